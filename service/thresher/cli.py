@@ -1,0 +1,17 @@
+"""The ``thresher`` command line (placeholder until the service lands)."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(prog="thresher")
+    parser.add_subparsers(dest="command", required=True)
+    parser.parse_args(argv)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
