@@ -1,0 +1,526 @@
+"""The HTTP service: ``create_app(settings) -> web.Application``.
+
+Handlers translate between HTTP and `ModelRegistry`/`Model` calls and hold no learning logic.
+One middleware maps every `ThresherError` (and aiohttp's own HTTP errors) to RFC 9457 problem
+details, counts responses and latency per route, and caps requests in flight.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import json
+import logging
+import math
+import time
+from collections.abc import AsyncIterator, Awaitable, Callable
+from pathlib import Path
+from typing import Any
+
+import msgpack
+from aiohttp import web
+from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
+
+from . import __version__
+from .auth import OPEN, Principal, RateLimiter, TokenStore
+from .errors import (
+    BadRequest,
+    Forbidden,
+    InvalidInput,
+    NotFound,
+    PayloadTooLarge,
+    RateLimited,
+    ThresherError,
+    Unauthorized,
+    Unavailable,
+    UnsupportedMedia,
+)
+from .lifecycle import ModelRegistry
+from .metrics import HttpMetrics, build_registry
+from .openapi import openapi_document
+from .settings import Settings
+
+logger = logging.getLogger("thresher.http")
+
+SETTINGS = web.AppKey("settings", Settings)
+MODELS = web.AppKey("models", ModelRegistry)
+TOKENS = web.AppKey("tokens", TokenStore)
+LIMITER = web.AppKey("limiter", RateLimiter)
+PROM = web.AppKey("prometheus", CollectorRegistry)
+HTTP_METRICS = web.AppKey("http_metrics", HttpMetrics)
+INFLIGHT = web.AppKey("inflight", list)
+PRINCIPAL = web.RequestKey("principal", Principal)
+PAGE_DIR = Path(__file__).with_name("page")
+MSGPACK = "application/msgpack"
+PROBLEM = "application/problem+json"
+Handler = Callable[[web.Request], Awaitable[web.StreamResponse]]
+
+
+# -- encoding ------------------------------------------------------------------------------
+
+
+def _wants_msgpack(request: web.Request) -> bool:
+    accept = request.headers.get("Accept", "")
+    return MSGPACK in accept and "application/json" not in accept.split(MSGPACK)[0]
+
+
+def answer(request: web.Request, body: Any, *, status: int = 200) -> web.Response:
+    """JSON, or msgpack when the client's Accept asks for it."""
+    if _wants_msgpack(request):
+        return web.Response(
+            body=msgpack.packb(body, use_bin_type=True), status=status, content_type=MSGPACK
+        )
+    return web.Response(
+        text=json.dumps(body, separators=(",", ":"), allow_nan=False),
+        status=status,
+        content_type="application/json",
+    )
+
+
+def problem(error: ThresherError) -> web.Response:
+    response = web.Response(
+        text=json.dumps(error.to_problem()), status=error.status, content_type=PROBLEM
+    )
+    retry = getattr(error, "retry_after", None)
+    if retry is not None:
+        response.headers["Retry-After"] = str(max(1, math.ceil(retry)))
+    www = error.extra.get("www_authenticate") if isinstance(error, Unauthorized) else None
+    if isinstance(error, Unauthorized):
+        response.headers["WWW-Authenticate"] = www or 'Bearer realm="thresher"'
+    return response
+
+
+async def read_body(request: web.Request) -> Any:
+    """Parse a JSON or msgpack body, with errors that say what to send instead."""
+    limit = request.app[SETTINGS].max_body_bytes
+    if request.content_length is not None and request.content_length > limit:
+        raise PayloadTooLarge(f"body of {request.content_length} bytes is over {limit} bytes")
+    ctype = request.content_type
+    if ctype not in ("application/json", MSGPACK):
+        raise UnsupportedMedia(
+            f"content type {ctype!r} is not read here; send application/json or {MSGPACK}"
+        )
+    try:
+        raw = await request.read()
+    except web.HTTPRequestEntityTooLarge:
+        raise PayloadTooLarge(f"body is over the limit of {limit} bytes") from None
+    if not raw:
+        raise BadRequest("the request body is empty; send a JSON object")
+    try:
+        if ctype == MSGPACK:
+            return msgpack.unpackb(raw, raw=False, strict_map_key=True)
+        return json.loads(raw, parse_constant=_reject_constant)
+    except (ValueError, msgpack.UnpackException, UnicodeDecodeError) as exc:
+        kind = "msgpack" if ctype == MSGPACK else "JSON"
+        raise BadRequest(f"body is not valid {kind}: {exc}") from None
+
+
+def _reject_constant(name: str) -> Any:
+    raise ValueError(f"{name} is not valid JSON")
+
+
+def _object(body: Any, *keys: str) -> dict[str, Any]:
+    if not isinstance(body, dict):
+        raise InvalidInput("the body must be a JSON object", path="")
+    for key in body:
+        if key not in keys:
+            raise InvalidInput(f"unknown key {key!r}; expected {', '.join(keys)}", path=key)
+    return body
+
+
+# -- middleware ----------------------------------------------------------------------------
+
+
+@web.middleware
+async def edge(request: web.Request, handler: Handler) -> web.StreamResponse:
+    """Problem details, request metrics, in-flight cap, authentication."""
+    app = request.app
+    route = request.match_info.route.resource
+    template = route.canonical if route is not None else "unmatched"
+    started = time.perf_counter()
+    inflight = app[INFLIGHT]
+    status = 500
+    try:
+        if inflight[0] >= app[SETTINGS].max_inflight and template.startswith("/api/"):
+            raise Unavailable("too many requests in progress; retry shortly", retry_after=1.0)
+        inflight[0] += 1
+        try:
+            request[PRINCIPAL] = _authenticate(request, template)
+            response = await handler(request)
+        finally:
+            inflight[0] -= 1
+        status = response.status
+        return response
+    except ThresherError as error:
+        status = error.status
+        return problem(error)
+    except web.HTTPException as exc:
+        status = exc.status
+        if exc.status == 404:
+            return problem(NotFound(f"no route {request.method} {request.path}"))
+        if exc.status == 405:
+            error = ThresherError(f"{request.method} is not allowed on {request.path}")
+            error.status, error.slug, error.title = 405, "method-not-allowed", "Method not allowed"
+            response = problem(error)
+            allowed = exc.headers.get("Allow")
+            if allowed:
+                response.headers["Allow"] = allowed
+            return response
+        if exc.status == 413:
+            status = 413
+            return problem(PayloadTooLarge("request body is over the size limit"))
+        raise
+    except (asyncio.CancelledError, ConnectionResetError):
+        status = 499
+        raise
+    except Exception:
+        logger.exception("unhandled error in %s %s", request.method, request.path)
+        status = 500
+        error = ThresherError("internal error; the server log has the details")
+        error.status, error.slug, error.title = 500, "internal", "Internal error"
+        return problem(error)
+    finally:
+        metrics = app[HTTP_METRICS]
+        metrics.duration.labels(template, request.method).observe(time.perf_counter() - started)
+        metrics.responses.labels(template, request.method, str(status)).inc()
+
+
+def _authenticate(request: web.Request, template: str) -> Principal:
+    if not template.startswith("/api/") or template == "/api/openapi.json":
+        return OPEN
+    tokens = request.app[TOKENS]
+    who = OPEN if tokens is None else tokens.authenticate(request.headers.get("Authorization"))
+    if not request.app[MODELS].ready:
+        raise Unavailable("recovering: loading snapshots and replaying label logs", retry_after=1.0)
+    return who
+
+
+def principal(request: web.Request, role: str, model: str | None = None) -> Principal:
+    who: Principal = request[PRINCIPAL]
+    who.require(role, model)
+    return who
+
+
+# -- handlers ------------------------------------------------------------------------------
+
+
+async def create_model(request: web.Request) -> web.Response:
+    principal(request, "admin")
+    body = await read_body(request)
+    name = body.get("name") if isinstance(body, dict) else None
+    principal(request, "admin", name if isinstance(name, str) else None)
+    model = await request.app[MODELS].create(body)
+    return answer(request, model.summary(), status=201)
+
+
+async def list_models(request: web.Request) -> web.Response:
+    who = principal(request, "score")
+    registry = request.app[MODELS]
+    items = [
+        registry.models[n].summary()
+        for n in registry.names()
+        if who.models is None or n in who.models
+    ]
+    return answer(request, {"models": items})
+
+
+def _model(request: web.Request, role: str) -> Any:
+    name = request.match_info["model"]
+    principal(request, role, name)
+    return request.app[MODELS].get(name)
+
+
+async def get_model(request: web.Request) -> web.Response:
+    model = _model(request, "score")
+    summary = model.summary()
+    info = request.app[MODELS].last_snapshot.get(model.name)
+    summary["snapshot"] = None if info is None else _snapshot_json(info)
+    return answer(request, summary)
+
+
+async def delete_model(request: web.Request) -> web.Response:
+    model = _model(request, "admin")
+    await request.app[MODELS].delete(model.name)
+    return web.Response(status=204)
+
+
+async def score(request: web.Request) -> web.Response:
+    model = _model(request, "score")
+    body = _object(await read_body(request), "events", "explain")
+    events = body.get("events")
+    settings = request.app[SETTINGS]
+    if not isinstance(events, list) or not events:
+        raise InvalidInput("events must be a non-empty list of events", path="events")
+    if len(events) > settings.max_events:
+        raise PayloadTooLarge(
+            f"{len(events)} events is over the limit of {settings.max_events} per request; "
+            "split the batch",
+            path="events",
+        )
+    explain = body.get("explain", 0)
+    if isinstance(explain, bool) or not isinstance(explain, int) or not 0 <= explain <= 50:
+        raise InvalidInput("explain must be an integer from 0 to 50", path="explain")
+    results = model.score(
+        events, explain=explain, now=time.time(), bytes_hint=request.content_length or 0
+    )
+    return answer(request, {"results": results})
+
+
+async def post_labels(request: web.Request) -> web.Response:
+    model = _model(request, "label")
+    who: Principal = request[PRINCIPAL]
+    body = _object(await read_body(request), "labels", "source", "wait")
+    labels = body.get("labels")
+    settings = request.app[SETTINGS]
+    if not isinstance(labels, list) or not labels:
+        raise InvalidInput("labels must be a non-empty list of labels", path="labels")
+    if len(labels) > settings.max_labels:
+        raise PayloadTooLarge(
+            f"{len(labels)} labels is over the limit of {settings.max_labels} per request",
+            path="labels",
+        )
+    source = body.get("source")
+    if not isinstance(source, str) or not 0 < len(source) <= 128:
+        raise InvalidInput(
+            "source must name where the labels come from (1-128 characters), e.g. "
+            "'review-queue' or 'chargebacks'",
+            path="source",
+        )
+    wait = body.get("wait", False)
+    if not isinstance(wait, bool):
+        raise InvalidInput("wait must be true or false", path="wait")
+    rate = who.labels_per_second or settings.labels_per_second
+    if rate:
+        delay = request.app[LIMITER].allow(who.name, len(labels), time.monotonic(), rate)
+        if delay > 0:
+            raise RateLimited(
+                f"token {who.name!r} is over its cap of {rate:g} labels per second",
+                retry_after=delay,
+            )
+    registry = request.app[MODELS]
+    ack = await model.label(labels, source=source, now=time.time(), wait=wait)
+    if registry.note_applied(model.name, ack.applied):
+        request.app[BACKGROUND].append(asyncio.ensure_future(_auto_snapshot(registry, model.name)))
+    return answer(
+        request,
+        {
+            "applied": ack.applied,
+            "duplicates": ack.duplicates,
+            "mistakes": ack.mistakes,
+            "offset": ack.offset,
+        },
+    )
+
+
+async def quality(request: web.Request) -> web.Response:
+    model = _model(request, "score")
+    return answer(request, quality_report(model))
+
+
+def quality_report(model: Any) -> dict[str, Any]:
+    report: dict[str, Any] = model.quality.report()
+    report["model"] = model.name
+    report["recent_mistakes"] = list(model.recent_mistakes)
+    report["offset"] = model.offset
+    return _finite(report)
+
+
+def _finite(value: Any) -> Any:
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, dict):
+        return {k: _finite(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_finite(v) for v in value]
+    return value
+
+
+def _snapshot_json(info: Any) -> dict[str, Any]:
+    return {
+        "generation": info.generation,
+        "offset": info.offset,
+        "time": info.time,
+        "bytes": info.bytes,
+    }
+
+
+async def list_snapshots(request: web.Request) -> web.Response:
+    model = _model(request, "score")
+    infos = request.app[MODELS].snapshots(model.name)
+    return answer(request, {"snapshots": [_snapshot_json(i) for i in infos]})
+
+
+async def take_snapshot(request: web.Request) -> web.Response:
+    model = _model(request, "admin")
+    info = await request.app[MODELS].snapshot(model.name)
+    return answer(request, _snapshot_json(info), status=201)
+
+
+async def restore_snapshot(request: web.Request) -> web.Response:
+    model = _model(request, "admin")
+    raw = request.match_info["generation"]
+    if not raw.isdigit():
+        raise InvalidInput("generation must be a whole number", path="generation")
+    restored = await request.app[MODELS].restore(model.name, int(raw))
+    return answer(request, restored.summary())
+
+
+async def rebuild(request: web.Request) -> web.Response:
+    model = _model(request, "admin")
+    body = _object(await read_body(request), "exclude_sources", "from_snapshot")
+    sources = body.get("exclude_sources", [])
+    if not isinstance(sources, list) or not all(isinstance(s, str) for s in sources):
+        raise InvalidInput("exclude_sources must be a list of source names", path="exclude_sources")
+    from_snapshot = body.get("from_snapshot", False)
+    if not isinstance(from_snapshot, bool):
+        raise InvalidInput("from_snapshot must be true or false", path="from_snapshot")
+    rebuilt = await request.app[MODELS].rebuild(
+        model.name, exclude_sources=sources, from_snapshot=from_snapshot
+    )
+    return answer(request, rebuilt.summary())
+
+
+async def events_stream(request: web.Request) -> web.StreamResponse:
+    """Server-sent events: every model's quality report once a second, for the page."""
+    principal(request, "score")
+    registry = request.app[MODELS]
+    response = web.StreamResponse(
+        headers={"Content-Type": "text/event-stream", "Cache-Control": "no-cache"}
+    )
+    await response.prepare(request)
+    wanted = request.query.get("model")
+    try:
+        for _ in range(3600):  # an hour; EventSource reconnects by itself
+            for name in registry.names():
+                if wanted and name != wanted:
+                    continue
+                model = registry.models.get(name)
+                if model is None:
+                    continue
+                data = quality_report(model)
+                data["summary"] = model.summary()
+                info = registry.last_snapshot.get(name)
+                data["snapshot"] = None if info is None else _snapshot_json(info)
+                await response.write(f"event: quality\ndata: {json.dumps(data)}\n\n".encode())
+            await asyncio.sleep(1.0)
+    except (ConnectionResetError, asyncio.CancelledError):
+        pass
+    return response
+
+
+async def metrics(request: web.Request) -> web.Response:
+    body = generate_latest(request.app[PROM])
+    return web.Response(body=body, headers={"Content-Type": CONTENT_TYPE_LATEST})
+
+
+async def healthz(request: web.Request) -> web.Response:
+    return answer(request, {"status": "alive", "version": __version__})
+
+
+async def readyz(request: web.Request) -> web.Response:
+    if not request.app[MODELS].ready:
+        raise Unavailable("recovering: loading snapshots and replaying label logs", retry_after=1.0)
+    return answer(request, {"status": "ready", "models": len(request.app[MODELS].models)})
+
+
+async def openapi(request: web.Request) -> web.Response:
+    return answer(request, openapi_document(__version__))
+
+
+async def page(request: web.Request) -> web.StreamResponse:
+    name = request.match_info.get("file", "index.html")
+    path = (PAGE_DIR / name).resolve()
+    if PAGE_DIR.resolve() not in path.parents or not path.is_file():
+        raise NotFound(f"no page file {name!r}")
+    return web.FileResponse(path, headers={"Cache-Control": "no-cache"})
+
+
+# -- background work -----------------------------------------------------------------------
+
+BACKGROUND = web.AppKey("background", list)
+
+
+async def _auto_snapshot(registry: ModelRegistry, name: str) -> None:
+    try:
+        await registry.snapshot(name)
+    except (ThresherError, OSError) as exc:
+        logger.error("automatic snapshot of %s failed: %s", name, exc)
+    except KeyError:
+        pass  # deleted meanwhile
+
+
+async def _snapshot_timer(registry: ModelRegistry, interval: float) -> None:
+    while True:
+        await asyncio.sleep(interval)
+        for name in registry.names():
+            model = registry.models.get(name)
+            info = registry.last_snapshot.get(name)
+            if model is not None and (info is None or info.offset != model.offset):
+                await _auto_snapshot(registry, name)
+
+
+async def lifecycle_ctx(app: web.Application) -> AsyncIterator[None]:
+    """Open models in the background (snapshot + replay) while /readyz says not yet; run the
+    snapshot timer; on shutdown, write final snapshots and close the logs."""
+    registry = app[MODELS]
+    interval = app[SETTINGS].snapshot_interval
+
+    async def start() -> None:
+        try:
+            await registry.open()
+        except Exception:
+            logger.exception("could not open the models in %s", app[SETTINGS].data_dir)
+            raise
+        if interval:
+            app[BACKGROUND].append(asyncio.ensure_future(_snapshot_timer(registry, interval)))
+
+    registry.lock_data_dir()  # fail the start-up at once, not in the background
+    opening = asyncio.ensure_future(start())
+    app[BACKGROUND].append(opening)
+    yield
+    for task in app[BACKGROUND]:
+        task.cancel()
+    for task in app[BACKGROUND]:
+        with contextlib.suppress(asyncio.CancelledError, Exception):
+            await task
+    if registry.ready:
+        await registry.close(snapshot=True)
+
+
+def create_app(settings: Settings, *, registry: ModelRegistry | None = None) -> web.Application:
+    """Build the application; nothing starts until it is run."""
+    if not settings.is_loopback() and settings.tokens_file is None and not settings.insecure:
+        raise Forbidden(
+            f"refusing to listen on {settings.host} without --tokens-file; create tokens with "
+            "`thresher token new`, or pass --insecure to accept anyone who can reach the port"
+        )
+    app = web.Application(middlewares=[edge], client_max_size=settings.max_body_bytes)
+    app[SETTINGS] = settings
+    models = registry or ModelRegistry(settings)
+    app[MODELS] = models
+    app[TOKENS] = TokenStore.load(settings.tokens_file) if settings.tokens_file else None  # type: ignore[assignment]
+    app[LIMITER] = RateLimiter()
+    app[PROM], app[HTTP_METRICS] = build_registry(models)
+    app[INFLIGHT] = [0]
+    app[BACKGROUND] = []
+    r = app.router
+    r.add_post("/api/models", create_model)
+    r.add_get("/api/models", list_models)
+    r.add_get("/api/models/{model}", get_model)
+    r.add_delete("/api/models/{model}", delete_model)
+    r.add_post("/api/models/{model}/score", score)
+    r.add_post("/api/models/{model}/labels", post_labels)
+    r.add_get("/api/models/{model}/quality", quality)
+    r.add_get("/api/models/{model}/snapshots", list_snapshots)
+    r.add_post("/api/models/{model}/snapshots", take_snapshot)
+    r.add_post("/api/models/{model}/snapshots/{generation}/restore", restore_snapshot)
+    r.add_post("/api/models/{model}/rebuild", rebuild)
+    r.add_get("/api/events", events_stream)
+    r.add_get("/api/openapi.json", openapi)
+    r.add_get("/metrics", metrics)
+    r.add_get("/healthz", healthz)
+    r.add_get("/readyz", readyz)
+    r.add_get("/", page)
+    r.add_get("/page/{file}", page)
+    app.cleanup_ctx.append(lifecycle_ctx)
+    return app

@@ -1,0 +1,314 @@
+"""The one owner of every model's lifecycle: create, load, snapshot, restore, rebuild, delete.
+
+On disk, per model::
+
+    DATA_DIR/models/NAME/model.json     the definition (format-versioned, written atomically)
+    DATA_DIR/models/NAME/log/           label log segments (file backend)
+    DATA_DIR/models/NAME/snapshots/     snapshot generations
+
+Start-up loads each model's newest snapshot that verifies, then replays its log from the
+snapshot's offset; only then is the model (and `/readyz`) ready.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import fcntl
+import json
+import logging
+import os
+import shutil
+import time
+from collections.abc import Callable, Iterable
+from pathlib import Path
+from typing import Any
+
+from . import records
+from .errors import Conflict, InvalidConfig, NotFound
+from .eventcache import EventCache
+from .labellog import FileLog, LabelLog
+from .models import Model, ModelConfig
+from .settings import Settings
+from .snapshots import SnapshotInfo, SnapshotStore
+
+logger = logging.getLogger("thresher.models")
+CONFIG_FORMAT = 1
+
+
+class ModelRegistry:
+    """All models of one server, and every operation that changes which state a model has."""
+
+    def __init__(self, settings: Settings, *, clock: Callable[[], float] = time.time) -> None:
+        self.settings = settings
+        self.clock = clock
+        self.root = settings.data_path / "models"
+        self.models: dict[str, Model] = {}
+        self.stores: dict[str, SnapshotStore] = {}
+        self.snapshot_fallbacks: dict[str, int] = {}
+        self.last_snapshot: dict[str, SnapshotInfo | None] = {}
+        self._since_snapshot: dict[str, int] = {}
+        self._locks: dict[str, asyncio.Lock] = {}
+        self.ready = False
+
+    # -- start and stop --------------------------------------------------------------------
+
+    async def open(self) -> None:
+        """Load every model found in the data directory, then mark the registry ready."""
+        self.lock_data_dir()
+        for path in sorted(self.root.iterdir()):
+            if path.is_dir() and (path / "model.json").exists():
+                config = ModelConfig.from_stored(_read_config(path / "model.json"))
+                await self._load(config, path)
+        self.ready = True
+
+    def lock_data_dir(self) -> None:
+        """Take the data directory for this process; Conflict if another server has it."""
+        # Two servers appending to one log would corrupt it; the lock dies with the process.
+        if getattr(self, "_lock_fd", None) is not None:
+            return
+        self.root.mkdir(parents=True, exist_ok=True)
+        path = self.settings.data_path / "LOCK"
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            os.close(fd)
+            raise Conflict(
+                f"another thresher process is using {self.settings.data_dir}; stop it or pick "
+                "another --data-dir"
+            ) from None
+        self._lock_fd = fd
+
+    async def close(self, *, snapshot: bool = True) -> None:
+        """Write a final snapshot of each model that moved, then close every log."""
+        for name in list(self.models):
+            model = self.models[name]
+            info = self.last_snapshot.get(name)
+            if snapshot and (info is None or info.offset != model.offset):
+                try:
+                    await self.snapshot(name)
+                except Exception:  # a failing disk must not stop the other models closing
+                    logger.exception("final snapshot of %s failed", name)
+            await model.log.close()
+        self.models.clear()
+        fd = getattr(self, "_lock_fd", None)
+        if fd is not None:
+            os.close(fd)
+            self._lock_fd = None
+
+    # -- lifecycle -------------------------------------------------------------------------
+
+    def get(self, name: str) -> Model:
+        model = self.models.get(name)
+        if model is None:
+            raise NotFound(f"no model named {name!r}; create it with POST /api/models")
+        return model
+
+    def names(self) -> list[str]:
+        return sorted(self.models)
+
+    async def create(self, body: Any) -> Model:
+        """Create a model from a validated definition; 409 when the name is taken."""
+        config = ModelConfig.from_json(body, created=self.clock())
+        if config.name in self.models:
+            raise Conflict(f"a model named {config.name!r} already exists", path="name")
+        path = self.root / config.name
+        if path.exists():
+            shutil.rmtree(path)  # a half-created or half-deleted leftover with no model.json
+        path.mkdir(parents=True)
+        _write_config(path / "model.json", config)
+        model = await self._load(config, path)
+        logger.info("created model %s", config.name)
+        return model
+
+    async def delete(self, name: str) -> None:
+        model = self.get(name)
+        async with self._lock(name):
+            del self.models[name]
+            await model.log.close()
+            path = self.root / name
+            trash = self.root / f".deleted-{name}-{int(self.clock() * 1000)}"
+            os.replace(path, trash)  # atomic: a crash mid-delete leaves no half model behind
+            await asyncio.to_thread(shutil.rmtree, trash, True)
+        logger.info("deleted model %s", name)
+
+    async def _load(self, config: ModelConfig, path: Path) -> Model:
+        log = await self._open_log(config, path)
+        s = self.settings
+        cache = EventCache(
+            max_entries=s.cache_entries, max_bytes=s.cache_bytes, ttl_seconds=s.cache_ttl
+        )
+        model = Model(config, log, cache=cache, max_fields=s.max_fields)
+        store = SnapshotStore(path / "snapshots", keep=s.snapshot_keep)
+        self.stores[config.name] = store
+        loaded = await asyncio.to_thread(store.load_newest)
+        self.snapshot_fallbacks[config.name] = 0
+        self.last_snapshot[config.name] = None
+        if loaded is not None:
+            state, info, skipped = loaded
+            for bad, why in skipped:
+                logger.warning(
+                    "model %s: snapshot generation %d rejected (%s); using an older one",
+                    config.name,
+                    bad.generation,
+                    why,
+                )
+            self.snapshot_fallbacks[config.name] = len(skipped)
+            model.load_state(state)
+            self.last_snapshot[config.name] = info
+        replayed = await self.replay(model)
+        logger.info(
+            "model %s ready at offset %d (%d labels replayed from the log)",
+            config.name,
+            model.offset,
+            replayed,
+        )
+        self.models[config.name] = model
+        self._since_snapshot[config.name] = 0
+        return model
+
+    async def _open_log(self, config: ModelConfig, path: Path) -> LabelLog:
+        s = self.settings
+        return await FileLog.open(
+            path / "log",
+            flush=s.flush,
+            interval_ms=s.flush_interval_ms,
+            segment_bytes=s.segment_bytes,
+        )
+
+    async def replay(self, model: Model, *, chunk: int = 2048) -> int:
+        """Apply every log record from the model's offset to the head, in order."""
+        count = 0
+        async for offset, payload in model.log.read(model.offset):
+            model.apply(offset, records.decode(payload))
+            count += 1
+            if count % chunk == 0:
+                await asyncio.sleep(0)  # let health checks and scoring through a long replay
+        return count
+
+    # -- snapshots -------------------------------------------------------------------------
+
+    def note_applied(self, name: str, count: int) -> bool:
+        """Count applied labels; True when an automatic snapshot is due by label count."""
+        self._since_snapshot[name] = self._since_snapshot.get(name, 0) + count
+        every = self.settings.snapshot_every
+        return bool(every) and self._since_snapshot[name] >= every
+
+    async def snapshot(self, name: str) -> SnapshotInfo:
+        """Write a snapshot now; arrays are copied on the loop and written in a thread."""
+        model = self.get(name)
+        state = model.state()
+        self._since_snapshot[name] = 0
+        info = await asyncio.to_thread(
+            self.stores[name].write, state, offset=model.offset, time=self.clock()
+        )
+        self.last_snapshot[name] = info
+        await self._trim_log(model, self.stores[name])
+        return info
+
+    async def _trim_log(self, model: Model, store: SnapshotStore) -> None:
+        oldest = store.oldest_offset()
+        if oldest is None:
+            return
+        below = max(0, oldest - self.settings.log_retain)
+        await model.log.trim(below)
+
+    def snapshots(self, name: str) -> list[SnapshotInfo]:
+        self.get(name)
+        return self.stores[name].list()
+
+    async def restore(self, name: str, generation: int) -> Model:
+        """Go back to a snapshot generation; labels after it are dropped from the weights.
+
+        The restored state is written at once as a new snapshot at the current log head, so a
+        restart keeps the rollback instead of replaying the dropped labels.
+        """
+        model = self.get(name)
+        store = self.stores[name]
+        if not any(i.generation == generation for i in store.list()):
+            raise NotFound(f"model {name!r} has no snapshot generation {generation}")
+        async with self._lock(name):
+            await model.quiesce("restoring a snapshot")
+            try:
+                state = await asyncio.to_thread(store.load, generation)
+            finally:
+                model.frozen = None
+            head = model.log.head()
+            model.load_state(state)
+            skipped = head - model.offset
+            # Jump over the dropped records: they stay in the log for a later rebuild.
+            model.offset = head
+            await self.snapshot(name)
+        logger.info(
+            "model %s restored to generation %d; %d later labels dropped",
+            name,
+            generation,
+            skipped,
+        )
+        return model
+
+    async def rebuild(
+        self, name: str, *, exclude_sources: Iterable[str], from_snapshot: bool = False
+    ) -> Model:
+        """Relearn from the log while ignoring chosen sources (a poisoned label feed)."""
+        model = self.get(name)
+        excluded = frozenset(exclude_sources)
+        async with self._lock(name):
+            await model.quiesce("rebuilding")
+            try:
+                fresh = await self._rebuilt(model, excluded, from_snapshot)
+            finally:
+                model.frozen = None
+            self.models[name] = fresh
+            await self.snapshot(name)
+        logger.info("model %s rebuilt excluding sources %s", name, sorted(excluded))
+        return fresh
+
+    async def _rebuilt(self, model: Model, excluded: frozenset[str], from_snapshot: bool) -> Model:
+        name = model.name
+        fresh = Model(model.config, model.log, cache=model.cache, max_fields=model.max_fields)
+        if from_snapshot:
+            oldest = self.stores[name].list()
+            if not oldest:
+                raise InvalidConfig(
+                    "model has no snapshot to rebuild from; rebuild from empty instead",
+                    path="from_snapshot",
+                )
+            fresh.load_state(await asyncio.to_thread(self.stores[name].load, oldest[-1].generation))
+        elif model.log.first() > 0:
+            raise Conflict(
+                f"the log of {name!r} no longer holds labels below offset "
+                f"{model.log.first()}; rebuild with from_snapshot or raise --log-retain",
+                path="from_snapshot",
+            )
+        fresh.exclude_sources = excluded
+        await self.replay(fresh)
+        fresh.scored = model.scored
+        fresh.duplicates = model.duplicates
+        return fresh
+
+    def _lock(self, name: str) -> asyncio.Lock:
+        return self._locks.setdefault(name, asyncio.Lock())
+
+
+def _read_config(path: Path) -> dict[str, Any]:
+    with open(path, encoding="utf-8") as handle:
+        data = json.load(handle)
+    if data.get("format") != CONFIG_FORMAT:
+        raise InvalidConfig(f"{path}: unsupported model file format {data.get('format')!r}")
+    config: dict[str, Any] = data["model"]
+    return config
+
+
+def _write_config(path: Path, config: ModelConfig) -> None:
+    tmp = path.with_suffix(".tmp")
+    with open(tmp, "w", encoding="utf-8") as handle:
+        json.dump({"format": CONFIG_FORMAT, "model": config.to_json()}, handle, indent=2)
+        handle.flush()
+        os.fsync(handle.fileno())
+    os.replace(tmp, path)
+    fd = os.open(path.parent, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
