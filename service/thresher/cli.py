@@ -71,6 +71,21 @@ def _logging(level: str) -> None:
         format="%(asctime)s %(levelname)s %(name)s: %(message)s",
     )
     logging.getLogger("aiohttp.access").setLevel(logging.WARNING)
+    logging.getLogger("aiohttp.server").addFilter(_one_line_bad_requests)
+
+
+def _one_line_bad_requests(record: logging.LogRecord) -> bool:
+    """Malformed HTTP from a client is the client's problem: one line, no traceback."""
+    from aiohttp.http_exceptions import HttpProcessingError
+
+    if record.exc_info and isinstance(record.exc_info[1], HttpProcessingError):
+        error = record.exc_info[1]
+        record.msg = "rejected malformed HTTP request: %s"
+        record.args = (str(error.message).splitlines()[0] if error.message else error.code,)
+        record.exc_info = None
+        record.exc_text = None
+        record.levelno, record.levelname = logging.WARNING, "WARNING"
+    return True
 
 
 def cmd_serve(args: argparse.Namespace) -> int:

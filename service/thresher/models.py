@@ -368,7 +368,7 @@ class Model:
                 path=where,
             )
         label = item.get("label")
-        if label not in self.class_index:
+        if not isinstance(label, str) or label not in self.class_index:
             raise InvalidEvent(
                 f"label must be one of {', '.join(map(repr, self.config.classes))}",
                 path=f"{where}.label",

@@ -42,15 +42,73 @@ SCHEMAS: dict[str, Any] = {
             "path": {"type": "string", "description": "JSON path of the offending value"},
         },
     },
+    "FieldSpec": {
+        "oneOf": [
+            {
+                "type": "object",
+                "required": ["kind"],
+                "additionalProperties": False,
+                "properties": {"kind": {"enum": ["categorical", "set"]}},
+            },
+            {
+                "type": "object",
+                "required": ["kind"],
+                "additionalProperties": False,
+                "properties": {
+                    "kind": {"const": "text"},
+                    "ngrams": {"type": "integer", "minimum": 1, "maximum": 5, "default": 1},
+                    "char_ngrams": {"enum": [0, 2, 3, 4, 5, 6], "default": 0},
+                },
+            },
+            {
+                "type": "object",
+                "required": ["kind"],
+                "additionalProperties": False,
+                "properties": {
+                    "kind": {"const": "numeric"},
+                    "log1p": {"type": "boolean", "default": False},
+                    "clip": {
+                        "type": "array",
+                        "items": {"type": "number"},
+                        "minItems": 2,
+                        "maxItems": 2,
+                        "description": "[lo, hi] with lo < hi",
+                    },
+                    "buckets": {
+                        "type": "array",
+                        "items": {"type": "number"},
+                        "minItems": 1,
+                        "maxItems": 1024,
+                        "description": "strictly increasing edges; the value becomes a token",
+                    },
+                },
+            },
+        ]
+    },
     "FeatureSpec": {
         "type": ["object", "null"],
-        "description": "Field kinds, crosses and limits; null infers kinds from the values.",
+        "description": "Field kinds, crosses and limits; null infers kinds from the values. "
+        "A cross names 2 or 3 distinct declared non-text fields.",
+        "additionalProperties": False,
         "properties": {
-            "fields": {"type": "object", "additionalProperties": {"type": "object"}},
-            "crosses": {"type": "array", "items": {"type": "array", "items": {"type": "string"}}},
-            "strict": {"type": "boolean"},
-            "max_string_bytes": {"type": "integer"},
-            "max_tokens": {"type": "integer"},
+            "fields": {
+                "type": "object",
+                "propertyNames": {"minLength": 1},
+                "additionalProperties": _ref("FieldSpec"),
+            },
+            "crosses": {
+                "type": "array",
+                "items": {
+                    "type": "array",
+                    "items": {"type": "string"},
+                    "minItems": 2,
+                    "maxItems": 3,
+                    "uniqueItems": True,
+                },
+            },
+            "strict": {"type": "boolean", "default": False},
+            "max_string_bytes": {"type": "integer", "minimum": 1, "default": 65536},
+            "max_tokens": {"type": "integer", "minimum": 1, "default": 100000},
         },
     },
     "ModelCreate": {
@@ -59,7 +117,12 @@ SCHEMAS: dict[str, Any] = {
         "additionalProperties": False,
         "properties": {
             "name": NAME,
-            "classes": {"type": "array", "minItems": 2, "items": {"type": "string"}},
+            "classes": {
+                "type": "array",
+                "minItems": 2,
+                "uniqueItems": True,
+                "items": {"type": "string", "minLength": 1, "maxLength": 128},
+            },
             "features": _ref("FeatureSpec"),
             "bits": {"type": "integer", "minimum": 10, "maximum": 28, "default": 20},
             "rule": {
@@ -130,7 +193,7 @@ SCHEMAS: dict[str, Any] = {
         "required": ["fields"],
         "additionalProperties": False,
         "properties": {
-            "id": {"type": "string", "minLength": 1, "maxLength": 256},
+            "id": {"type": ["string", "null"], "minLength": 1, "maxLength": 256},
             "fields": {"type": "object"},
         },
     },
@@ -139,7 +202,12 @@ SCHEMAS: dict[str, Any] = {
         "required": ["events"],
         "additionalProperties": False,
         "properties": {
-            "events": {"type": "array", "minItems": 1, "maxItems": 10000, "items": _ref("Event")},
+            "events": {
+                "type": "array",
+                "minItems": 1,
+                "items": _ref("Event"),
+                "description": "at most --max-events (default 10,000); more is a 413",
+            },
             "explain": {"type": "integer", "minimum": 0, "maximum": 50, "default": 0},
         },
     },
@@ -178,7 +246,7 @@ SCHEMAS: dict[str, Any] = {
         "required": ["label"],
         "additionalProperties": False,
         "properties": {
-            "id": {"type": "string", "minLength": 1, "maxLength": 256},
+            "id": {"type": ["string", "null"], "minLength": 1, "maxLength": 256},
             "label": {"type": "string"},
             "fields": {"type": "object"},
         },
@@ -188,7 +256,12 @@ SCHEMAS: dict[str, Any] = {
         "required": ["labels", "source"],
         "additionalProperties": False,
         "properties": {
-            "labels": {"type": "array", "minItems": 1, "maxItems": 10000, "items": _ref("Label")},
+            "labels": {
+                "type": "array",
+                "minItems": 1,
+                "items": _ref("Label"),
+                "description": "at most --max-labels (default 10,000); more is a 413",
+            },
             "source": {"type": "string", "minLength": 1, "maxLength": 128},
             "wait": {
                 "type": "boolean",
@@ -228,6 +301,20 @@ SCHEMAS: dict[str, Any] = {
             "from_snapshot": {"type": "boolean", "default": False},
         },
     },
+}
+
+_MODEL_LINKS = {
+    op: {"operationId": op, "parameters": {"model": "$response.body#/name"}}
+    for op in (
+        "getModel",
+        "score",
+        "postLabels",
+        "getQuality",
+        "listSnapshots",
+        "takeSnapshot",
+        "rebuild",
+        "deleteModel",
+    )
 }
 
 MODEL_PARAM = {"name": "model", "in": "path", "required": True, "schema": NAME}
@@ -272,7 +359,7 @@ def openapi_document(version: str) -> dict[str, Any]:
                 "post": _op(
                     "Create a model",
                     "admin",
-                    {"201": _json(_ref("Model"), "created")},
+                    {"201": {**_json(_ref("Model"), "created"), "links": _MODEL_LINKS}},
                     body="ModelCreate",
                     errors=(*COMMON, 409),
                     op_id="createModel",
