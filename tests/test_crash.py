@@ -10,17 +10,13 @@ from __future__ import annotations
 import asyncio
 import os
 import random
-import signal
-import subprocess
-import sys
-import time
 from pathlib import Path
 from typing import Any
 
 import aiohttp
 import pytest
 
-from conftest import free_port
+from conftest import ServerProcess as Server
 
 MODEL = {
     "name": "signups",
@@ -36,67 +32,6 @@ MODEL = {
     "rule": "averaged",
 }
 KILLS = 20
-
-
-class Server:
-    """``thresher serve`` in a subprocess on a free loopback port."""
-
-    def __init__(self, data_dir: Path, **flags: Any) -> None:
-        self.data_dir = data_dir
-        self.port = free_port()
-        self.flags = flags
-        self.proc: subprocess.Popen[bytes] | None = None
-        self.url = f"http://127.0.0.1:{self.port}"
-
-    def start(self) -> None:
-        args = [
-            sys.executable,
-            "-m",
-            "thresher.cli",
-            "serve",
-            "--data-dir",
-            str(self.data_dir),
-            "--port",
-            str(self.port),
-            "--snapshot-interval",
-            "0.5",
-            "--snapshot-every",
-            "150",
-            "--log-level",
-            "warning",
-        ]
-        for key, value in self.flags.items():
-            args += ["--" + key.replace("_", "-"), str(value)]
-        self.log_path = self.data_dir.parent / f"{self.data_dir.name}.server.log"
-        with open(self.log_path, "ab") as log:
-            self.proc = subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=log)
-
-    async def wait_ready(self, session: aiohttp.ClientSession, timeout: float = 30.0) -> None:
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            if self.proc is not None and self.proc.poll() is not None:
-                err = self.log_path.read_text(errors="replace")
-                raise AssertionError(f"server exited with {self.proc.returncode}: {err[-2000:]}")
-            try:
-                async with session.get(self.url + "/readyz") as resp:
-                    if resp.status == 200:
-                        return
-            except aiohttp.ClientError:
-                pass
-            await asyncio.sleep(0.05)
-        raise AssertionError("server did not become ready")
-
-    def kill(self) -> None:
-        if self.proc is not None and self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGKILL)
-            self.proc.wait()
-
-    def stop(self) -> int:
-        if self.proc is None:
-            return 0
-        if self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGTERM)
-        return self.proc.wait(timeout=30)
 
 
 def _labels(n: int, seed: int) -> list[dict[str, Any]]:

@@ -23,7 +23,7 @@ from pathlib import Path
 import msgpack
 import pytest
 
-from conftest import require_binary
+from conftest import _run, _unmount, mounted_tmpfs, require_binary
 from thresher import records
 from thresher.errors import LogUnavailable
 from thresher.labellog import CorruptLog, FileLog, LabelLog, OffsetOutOfRange
@@ -373,34 +373,6 @@ async def test_damage_inside_a_closed_segment_is_an_error(tmp_path: Path) -> Non
 
 
 # -- failing disks ------------------------------------------------------------------------
-
-
-def _run(*argv: str) -> None:
-    subprocess.run(argv, check=True, capture_output=True, timeout=60)
-
-
-def _unmount(path: Path) -> None:
-    """Unmount, lazily when a failed test still holds files open there."""
-    if subprocess.run(["umount", str(path)], capture_output=True, timeout=60).returncode:
-        _run("umount", "-l", str(path))
-
-
-@contextlib.contextmanager
-def mounted_tmpfs(path: Path, size: str) -> Iterator[Path]:
-    """A real tmpfs of ``size``; skips where this process may not mount."""
-    require_binary("mount")
-    path.mkdir(parents=True, exist_ok=True)
-    done = subprocess.run(
-        ["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs", str(path)],
-        capture_output=True,
-        timeout=60,
-    )
-    if done.returncode != 0:
-        pytest.skip(f"cannot mount a tmpfs here: {done.stderr.decode().strip()}")
-    try:
-        yield path
-    finally:
-        _unmount(path)
 
 
 def fill_up(path: Path, leave: int = 0) -> None:

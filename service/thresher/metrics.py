@@ -190,7 +190,9 @@ class _Families:
             labels=m,
         )
         self.bits_low = GaugeMetricFamily(
-            "thresher_hash_bits_low", "1 when the hash space is too full: use more bits.", labels=m
+            "thresher_hash_space_crowded",
+            "1 when the hash space is crowded (over a tenth used): give the model more bits.",
+            labels=m,
         )
         self.cache = GaugeMetricFamily(
             "thresher_event_cache_entries", "Scored events held for labelling by id.", labels=m
