@@ -81,7 +81,7 @@ def test_round_trip_is_bit_exact_for_every_kind() -> None:
     rng = np.random.default_rng(7)
     state = sample_state(rng)
     check_state(decode(encode(state)), state)
-    arrays = {
+    arrays: dict[str, np.ndarray] = {
         "f64": rng.standard_normal(50),
         "f16": rng.standard_normal(9).astype(np.float16),
         "big_endian": rng.standard_normal(8).astype(">f4"),

@@ -1,9 +1,7 @@
 """The label log: the :class:`LabelLog` interface and :class:`FileLog`, its segment-file backend.
 
-A segment file holds a 20-byte header (magic ``THRLSEG\\0``, u16 format version, u16 zero,
-u64 first offset) and then records, each a little-endian u32 payload length, the u32 CRC-32
-of the payload, and the payload. Files are named by their first offset, so the offsets of a
-closed segment are known without reading it and only the last segment is scanned on open.
+The segment file format and open-time recovery live in :mod:`thresher.segments` (its names are
+re-exported here); this module appends, syncs, reads and trims.
 
 Flush ``always`` acknowledges an append once an fsync covers it; appends that arrive while an
 fsync is in flight share the next one (group commit). Flush ``interval`` acknowledges after the
@@ -21,36 +19,47 @@ import errno
 import fcntl
 import logging
 import os
-import struct
-import zlib
 from collections import deque
 from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
 from .errors import LogUnavailable
+from .segments import (
+    FRAME,
+    HEADER,
+    MAGIC,
+    MAX_RECORD_BYTES,
+    SPARSE_EVERY,
+    SUFFIX,
+    VERSION,
+    CorruptLog,
+    create_segment,
+    frame_records,
+    fsync_dir,
+    parse_records,
+    recover,
+    segment_path,
+)
 
-MAGIC = b"THRLSEG\0"
-VERSION = 1
-HEADER = struct.Struct("<8sHHQ")
-FRAME = struct.Struct("<II")
-SUFFIX = ".seg"
-MAX_RECORD_BYTES = 16 * 1024 * 1024
-SPARSE_EVERY = 256  # one remembered file position per this many records of a segment
+__all__ = [
+    "FRAME",
+    "HEADER",
+    "MAGIC",
+    "MAX_RECORD_BYTES",
+    "READ_CHUNK",
+    "SPARSE_EVERY",
+    "SUFFIX",
+    "VERSION",
+    "CorruptLog",
+    "FileLog",
+    "LabelLog",
+    "OffsetOutOfRange",
+]
+
 READ_CHUNK = 1 << 20
 
 _log = logging.getLogger("thresher.log")
-
-
-class CorruptLog(Exception):
-    """A segment fails its checks where records were acknowledged; nothing is dropped."""
-
-    def __init__(self, path: Path, position: int, reason: str) -> None:
-        super().__init__(
-            f"label log segment {path} is corrupt at byte {position}: {reason}; acknowledged "
-            "records would be lost by skipping it, so restore the file or rebuild the model"
-        )
-        self.path, self.position, self.reason = path, position, reason
 
 
 class OffsetOutOfRange(LookupError):
@@ -85,47 +94,8 @@ class LabelLog(abc.ABC):
         """Make everything durable and release the log."""
 
 
-def _parse(
-    buf: bytes, pos: int, count: int, rel: int, index: list[int], at: int
-) -> tuple[list[bytes], int, str | None]:
-    """Parse up to ``count`` records; return them, the end position, and why parsing stopped.
-
-    ``rel`` is the first record's number within its segment and ``at`` the file position of
-    ``buf[0]``, so that sparse-index positions can be recorded as the scan passes them.
-    A ``None`` reason with fewer than ``count`` records means the buffer ran out.
-    """
-    out: list[bytes] = []
-    size = len(buf)
-    while len(out) < count:
-        if pos + 8 > size:
-            return out, pos, None
-        length, crc = FRAME.unpack_from(buf, pos)
-        if length == 0 or length > MAX_RECORD_BYTES:
-            return out, pos, f"impossible record length {length}"
-        stop = pos + 8 + length
-        if stop > size:
-            return out, pos, None
-        payload = buf[pos + 8 : stop]
-        if zlib.crc32(payload) != crc:
-            return out, pos, "CRC-32 mismatch"
-        number = rel + len(out)
-        if number == len(index) * SPARSE_EVERY:
-            index.append(at + pos)
-        out.append(payload)
-        pos = stop
-    return out, pos, None
-
-
-def _fsync_dir(directory: Path) -> None:
-    fd = os.open(directory, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 class FileLog(LabelLog):
-    """Append-only segment files in one directory; see the module docstring for the format."""
+    """Append-only segment files in one directory, in the format of :mod:`thresher.segments`."""
 
     def __init__(
         self,
@@ -144,8 +114,6 @@ class FileLog(LabelLog):
         self.flush, self.interval_ms, self.segment_bytes = flush, interval_ms, segment_bytes
         self.fsyncs = self.bytes_written = self.records_written = self.appends = 0
         self.write_errors = self.sync_errors = self.rotations = 0
-        self.recovered_bytes_dropped = 0
-        self.recovered_at: int | None = None  # offset where a torn tail was cut, if one was
         self.directory.mkdir(parents=True, exist_ok=True)
         self._lock_fd = os.open(self.directory / "LOCK", os.O_RDWR | os.O_CREAT, 0o644)
         try:
@@ -161,10 +129,13 @@ class FileLog(LabelLog):
         self._sync_error: OSError | None = None
         self._needs_repair = self._closed = False
         try:
-            self._bases = self._recover()
+            found = recover(self.directory, self._index)
         except BaseException:
             os.close(self._lock_fd)
             raise
+        self._bases, self._written, self._pos = found.bases, found.written, found.pos
+        self.recovered_bytes_dropped = found.dropped
+        self.recovered_at: int | None = found.at  # offset where a torn tail was cut, if one was
         base = self._bases[-1]
         self._fd = os.open(self._path(base), os.O_WRONLY | os.O_APPEND)
         self._durable = self._written
@@ -175,74 +146,8 @@ class FileLog(LabelLog):
         """Open the log in a worker thread, so recovery does not block the event loop."""
         return await asyncio.to_thread(cls, directory, **options)
 
-    # -- recovery ---------------------------------------------------------------------------
-
     def _path(self, base: int) -> Path:
-        return self.directory / f"{base:020d}{SUFFIX}"
-
-    def _recover(self) -> list[int]:
-        names = sorted(p.name for p in self.directory.glob("*" + SUFFIX))
-        bases = [int(n[:20]) for n in names if len(n) == 20 + len(SUFFIX) and n[:20].isdigit()]
-        if not bases:
-            os.close(self._create_segment(0))
-            bases = [0]
-        for base in bases[:-1]:
-            with open(self._path(base), "rb") as handle:
-                self._check_header(base, handle.read(HEADER.size))
-        base = bases[-1]
-        path = self._path(base)
-        data = path.read_bytes()
-        if len(data) < HEADER.size:  # a crash while the segment was being created
-            self._cut(path, base, 0, len(data), "segment header torn")
-            path.unlink()
-            os.close(self._create_segment(base))
-            data = path.read_bytes()
-        self._check_header(base, data[: HEADER.size])
-        index = self._index.setdefault(base, [])
-        found, end, reason = _parse(data, HEADER.size, len(data), 0, index, 0)
-        self._written, self._pos = base + len(found), end
-        if end < len(data):
-            self._cut(path, self._written, end, len(data) - end, reason or "torn record")
-            with open(path, "r+b") as handle:
-                handle.truncate(end)
-                os.fsync(handle.fileno())
-        return bases
-
-    def _check_header(self, base: int, header: bytes) -> None:
-        path = self._path(base)
-        if len(header) < HEADER.size:
-            raise CorruptLog(path, len(header), "segment header is short")
-        magic, version, _, first = HEADER.unpack(header)
-        if magic != MAGIC:
-            raise CorruptLog(path, 0, "not a thresher label log segment (bad magic)")
-        if version != VERSION:
-            raise CorruptLog(path, 8, f"segment format version {version}, this build reads 1")
-        if first != base:
-            raise CorruptLog(path, 12, f"header says first offset {first}, the name says {base}")
-
-    def _cut(self, path: Path, offset: int, position: int, dropped: int, reason: str) -> None:
-        self.recovered_bytes_dropped += dropped
-        self.recovered_at = offset
-        _log.warning(
-            "label log %s: dropped %d bytes of a torn or corrupt tail at offset %d "
-            "(byte %d of %s): %s",
-            self.directory, dropped, offset, position, path.name, reason,
-        )  # fmt: skip
-
-    def _create_segment(self, base: int) -> int:
-        """Create a segment holding only its header, durable with its directory entry."""
-        path = self._path(base)
-        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_APPEND, 0o644)
-        try:
-            os.write(fd, HEADER.pack(MAGIC, VERSION, 0, base))
-            os.fsync(fd)
-            _fsync_dir(self.directory)
-        except BaseException:
-            os.close(fd)
-            path.unlink(missing_ok=True)
-            raise
-        self._index[base] = [HEADER.size]
-        return fd
+        return segment_path(self.directory, base)
 
     # -- appending --------------------------------------------------------------------------
 
@@ -264,14 +169,7 @@ class FileLog(LabelLog):
 
     async def append(self, payloads: list[bytes]) -> int:
         """Write the records in one write, in call order; see the module docstring for when."""
-        if not payloads:
-            raise ValueError("append needs at least one payload")
-        parts: list[bytes] = []
-        for payload in payloads:
-            if not isinstance(payload, bytes) or not 0 < len(payload) <= MAX_RECORD_BYTES:
-                raise ValueError(f"a payload must be 1..{MAX_RECORD_BYTES} bytes")
-            parts += (FRAME.pack(len(payload), zlib.crc32(payload)), payload)
-        buf = b"".join(parts)
+        buf = frame_records(payloads)
         async with self._write_lock:  # FIFO, and free of awaits unless a segment rotates
             if self._closed:
                 raise LogUnavailable("label log is closed; nothing was acknowledged")
@@ -400,7 +298,7 @@ class FileLog(LabelLog):
         await self._flush()  # the old segment is complete and durable before a new one starts
         base = self._written
         try:
-            fd = await asyncio.to_thread(self._create_segment, base)
+            fd = await asyncio.to_thread(create_segment, self.directory, base, self._index)
         except OSError as exc:
             raise self._unavailable(exc) from exc
         old, self._fd = self._fd, fd
@@ -450,7 +348,7 @@ class FileLog(LabelLog):
                         path, at, f"segment ends at offset {base + number}, {stop} expected"
                     )
                 buf += chunk
-                found, used, reason = _parse(buf, 0, stop - base - number, number, index, at)
+                found, used, reason = parse_records(buf, 0, stop - base - number, number, index, at)
                 if reason is not None:
                     raise CorruptLog(path, at + used, reason)
                 skip = max(0, start - base - number)
@@ -474,7 +372,7 @@ class FileLog(LabelLog):
     def _unlink(self, bases: list[int]) -> None:
         for base in bases:
             self._path(base).unlink(missing_ok=True)
-        _fsync_dir(self.directory)
+        fsync_dir(self.directory)
 
     async def close(self) -> None:
         """Flush, stop the background fsync, and release the files; safe to call twice."""

@@ -3,7 +3,8 @@
 Pure: sparse rows in, arrays out; no I/O, no clocks, no globals. A row is ``(indices, values)``
 with ``indices`` int64 sorted and unique in ``[0, 2**bits)`` and ``values`` float32; a batch is
 the same in CSR form ``(indptr, indices, values)``. The caller adds the bias as an ordinary
-constant feature, so there is no separate intercept.
+constant feature, so there is no separate intercept. The input checks and the array kernels
+live in :mod:`thresher.learner_kernels`; this module holds the model and its state.
 
 Numbers. Weights are float32. Every decision uses float64: gathered weights are widened, products
 are formed in float64 and each row is summed left to right in index order by one kernel
@@ -33,6 +34,20 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from .errors import InvalidConfig, InvalidInput
+from .learner_kernels import (
+    apply_update,
+    check_csr,
+    check_labels,
+    check_row,
+    fire_one,
+    fires,
+    labels_of,
+    row_sums,
+    segments,
+    serve_margins,
+    served_weights,
+    train_margins,
+)
 
 RULES = ("classic", "margin", "averaged", "passive_aggressive")
 STATE_FORMAT = 1
@@ -75,20 +90,6 @@ def _integer(value: Any, path: str, lo: int, hi: int) -> int:
     if not lo <= int(value) <= hi:
         raise InvalidConfig(f"must be between {lo} and {hi}, got {int(value)}", path=path)
     return int(value)
-
-
-def _segments(ptr: np.ndarray) -> np.ndarray:
-    """The row number of every nonzero of a CSR batch."""
-    return np.repeat(np.arange(ptr.size - 1, dtype=np.int64), np.diff(ptr))
-
-
-def _rival_one(scores: list[float], y: int) -> int:
-    """The highest-scoring wrong class (lowest index on ties)."""
-    best = -1
-    for r, score in enumerate(scores):
-        if r != y and (best < 0 or score > scores[best]):
-            best = r
-    return best
 
 
 class Learner:
@@ -158,174 +159,15 @@ class Learner:
         self.seen = 0
         self._chunk = 64
 
-    # -- input checks ----------------------------------------------------------------------
-
-    def _csr(self, indptr: Any, indices: Any, values: Any) -> tuple[np.ndarray, ...]:
-        ptr = np.asarray(indptr)
-        idx = np.asarray(indices)
-        val = np.asarray(values)
-        if ptr.ndim != 1 or ptr.size < 1 or ptr.dtype.kind not in "iu":
-            raise InvalidInput("must be a 1-D integer array of n+1 offsets", path="indptr")
-        if idx.ndim != 1 or (idx.size and idx.dtype.kind not in "iu"):
-            raise InvalidInput("must be a 1-D integer array", path="indices")
-        if val.ndim != 1 or val.shape != idx.shape or (val.size and val.dtype.kind not in "fiu"):
-            raise InvalidInput("must be a 1-D numeric array as long as indices", path="values")
-        ptr = ptr.astype(np.int64, copy=False)
-        idx = idx.astype(np.int64, copy=False)
-        if ptr[0] != 0 or ptr[-1] != idx.size or (ptr.size > 1 and np.any(np.diff(ptr) < 0)):
-            raise InvalidInput("must rise from 0 to the number of nonzeros", path="indptr")
-        if idx.size:
-            if idx.min() < 0 or idx.max() >= self.dim:
-                raise InvalidInput(f"must lie in [0, 2**{self.bits})", path="indices")
-            rising = np.diff(idx) > 0
-            inner = ptr[1:-1]
-            rising[inner[(inner > 0) & (inner < idx.size)] - 1] = True  # row boundaries
-            if not rising.all():
-                raise InvalidInput("must be sorted and unique within each row", path="indices")
-        x = val.astype(np.float64)
-        if not np.isfinite(x).all():
-            raise InvalidInput("must all be finite", path="values")
-        return ptr, idx, x
-
-    def _row(self, indices: Any, values: Any) -> tuple[np.ndarray, np.ndarray]:
-        """One row checked like :meth:`_csr`, with fewer array passes."""
-        idx, val = np.asarray(indices), np.asarray(values)
-        if idx.ndim != 1 or (idx.size and idx.dtype.kind not in "iu"):
-            raise InvalidInput("must be a 1-D integer array", path="indices")
-        if val.shape != idx.shape or (val.size and val.dtype.kind not in "fiu"):
-            raise InvalidInput("must be a 1-D numeric array as long as indices", path="values")
-        idx = idx.astype(np.int64, copy=False)
-        if idx.size:
-            if idx[0] < 0 or idx[-1] >= self.dim:
-                raise InvalidInput(f"must lie in [0, 2**{self.bits})", path="indices")
-            if idx.size > 1 and not (idx[1:] > idx[:-1]).all():
-                raise InvalidInput("must be sorted and unique within each row", path="indices")
-        x = val.astype(np.float64)
-        if not math.isfinite(float(x.sum())):  # float32 inputs cannot overflow a double sum
-            raise InvalidInput("must all be finite", path="values")
-        return idx, x
-
-    def _labels_in(self, ys: Any, n: int) -> np.ndarray:
-        arr = np.asarray(ys)
-        if arr.shape != (n,) or (n and arr.dtype.kind not in "iu"):
-            raise InvalidInput(f"must be {n} integer class indices", path="ys")
-        arr = arr.astype(np.int64, copy=False)
-        if n and (arr.min() < 0 or arr.max() >= self.n_classes):
-            raise InvalidInput(f"must lie in [0, {self.n_classes})", path="ys")
-        return arr
-
-    # -- kernels ---------------------------------------------------------------------------
-
-    def _sums(self, products: np.ndarray, seg: np.ndarray, n: int) -> np.ndarray:
-        """Row sums of float64 products (rows, nnz) -> (n, rows), left to right per row."""
-        out = np.empty((n, self.rows), dtype=np.float64)
-        for r in range(self.rows):
-            out[:, r] = np.bincount(seg, weights=products[r], minlength=n)
-        return out
-
-    def _served(self, idx: np.ndarray, counts: np.ndarray | float) -> np.ndarray:
-        """Served weights (rows, nnz) float64 at ``idx``; ``counts`` is c per nonzero."""
-        gathered = self.weights_.take(idx, axis=1).astype(np.float64)
-        if self.accum_ is None:
-            return gathered
-        # c = 0 only before the first example, when u is still zero: dividing by 1 is exact.
-        return gathered - self.accum_.take(idx, axis=1).astype(np.float64) / np.maximum(counts, 1.0)
-
-    def _train(self, idx: np.ndarray, x: np.ndarray, seg: np.ndarray, n: int) -> np.ndarray:
-        """Training margins (n, rows) of the rows ``seg`` labels."""
-        return self._sums(self.weights_.take(idx, axis=1).astype(np.float64) * x, seg, n)
-
-    def _serve(
-        self, idx: np.ndarray, x: np.ndarray, seg: np.ndarray, n: int, counts: np.ndarray | float
-    ) -> np.ndarray:
-        """Served margins (n, rows); ``counts`` is the averaging count c (per nonzero or one)."""
-        if self.accum_ is None:
-            return self._train(idx, x, seg, n)
-        return self._sums(self._served(idx, counts) * x, seg, n)
-
-    def _label(self, margins: np.ndarray) -> np.ndarray:
-        if self.rows == 1:
-            return (margins[:, 0] > 0).astype(np.int64)
-        return np.argmax(margins, axis=1).astype(np.int64)
-
-    def _fires(
-        self, train: np.ndarray, ys: np.ndarray, nnz: np.ndarray, sq: np.ndarray
-    ) -> np.ndarray:
-        """Which rows the rule would update on, given the training margins."""
-        if self.rows == 1:
-            s = train[:, 0]
-            sign = np.where(ys == 1, 1.0, -1.0)
-            if self.rule == "margin":
-                fire = sign * s <= self.margin
-            elif self.rule == "passive_aggressive":
-                return (1.0 - sign * s > 0) & (sq > 0)
-            else:
-                fire = np.where(ys == 1, s <= 0, s > 0)
-        else:
-            rows, masked = np.arange(ys.size), train.copy()
-            masked[rows, ys] = -np.inf  # the rival is the best wrong class, lowest index on ties
-            gap = train[rows, ys] - train[rows, np.argmax(masked, axis=1)]
-            if self.rule == "margin":
-                fire = gap <= self.margin
-            elif self.rule == "passive_aggressive":
-                return (1.0 - gap > 0) & (sq > 0)
-            else:
-                fire = np.argmax(train, axis=1) != ys
-        return fire & (nnz > 0)
-
-    def _fire_one(self, train: np.ndarray, y: int, nnz: int, sq: float) -> bool:
-        """:meth:`_fires` for one row, in Python floats (the same IEEE double operations)."""
-        t = train.tolist()
-        if self.rows == 1:
-            s, sign = t[0], (1.0 if y == 1 else -1.0)
-            if self.rule == "margin":
-                fire = sign * s <= self.margin
-            elif self.rule == "passive_aggressive":
-                return 1.0 - sign * s > 0 and sq > 0
-            else:
-                fire = s <= 0 if y == 1 else s > 0
-        else:
-            gap = t[y] - t[_rival_one(t, y)]
-            if self.rule == "margin":
-                fire = gap <= self.margin
-            elif self.rule == "passive_aggressive":
-                return 1.0 - gap > 0 and sq > 0
-            else:
-                fire = t.index(max(t)) != y
-        return fire and nnz > 0
-
-    def _apply(self, idx: np.ndarray, x: np.ndarray, y: int, train: np.ndarray, sq: float) -> None:
-        """Update the weights for one row that the rule fired on."""
-        step = 1.0
-        if self.rows == 1:
-            sign = 1.0 if y == 1 else -1.0
-            if self.rule == "passive_aggressive":
-                step = min(self.aggressiveness, (1.0 - sign * float(train[0])) / sq)
-            changes = [(0, sign * step * x)]
-        else:
-            rival = _rival_one(train.tolist(), y)
-            if self.rule == "passive_aggressive":
-                loss = 1.0 - (float(train[y]) - float(train[rival]))
-                step = min(self.aggressiveness, loss / (2.0 * sq))
-            delta = step * x
-            changes = [(y, delta), (rival, -delta)]
-        c = float(self.seen)
-        for row, delta in changes:
-            w = self.weights_[row]
-            w[idx] = (w[idx].astype(np.float64) + delta).astype(np.float32)
-            if self.accum_ is not None:
-                u = self.accum_[row]
-                u[idx] = (u[idx].astype(np.float64) + c * delta).astype(np.float32)
-        self.updates += 1
-
     # -- scoring ---------------------------------------------------------------------------
 
     def score_batch(self, indptr: Any, indices: Any, values: Any) -> tuple[np.ndarray, np.ndarray]:
         """Labels int64[n] and served margins float64[n, rows] of a CSR batch."""
-        ptr, idx, x = self._csr(indptr, indices, values)
+        ptr, idx, x = check_csr(indptr, indices, values, self.bits)
         n = ptr.size - 1
-        served = self._serve(idx, x, _segments(ptr), n, float(self.seen))
-        return self._label(served), served
+        seen = float(self.seen)
+        served = serve_margins(self.weights_, self.accum_, idx, x, segments(ptr), n, seen)
+        return labels_of(served), served
 
     def margins(self, indices: Any, values: Any) -> np.ndarray:
         """Served margins float64[rows] of one row."""
@@ -334,7 +176,7 @@ class Learner:
 
     def predict(self, indices: Any, values: Any) -> int:
         """The served class index of one row."""
-        return int(self._label(self.margins(indices, values)[None, :])[0])
+        return int(labels_of(self.margins(indices, values)[None, :])[0])
 
     def explain(self, indices: Any, values: Any, k: int) -> list[tuple[int, float, float]]:
         """Top ``k`` (index, served weight, weight x value) toward the predicted class.
@@ -343,13 +185,13 @@ class Learner:
         predicted class's row. Sorted by |contribution| descending, then index; zeros left out.
         """
         ptr = np.array([0, np.asarray(indices).size], dtype=np.int64)
-        ptr, idx, x = self._csr(ptr, indices, values)
+        ptr, idx, x = check_csr(ptr, indices, values, self.bits)
         if k <= 0 or idx.size == 0:
             return []
-        served = self._served(idx, float(self.seen))
+        served = served_weights(self.weights_, self.accum_, idx, float(self.seen))
         row = 0
         if self.rows > 1:  # the same kernel as margins(), so the row is the predicted class
-            row = int(np.argmax(self._sums(served * x, _segments(ptr), 1)[0]))
+            row = int(np.argmax(row_sums(served * x, segments(ptr), 1)[0]))
         contrib = served[row] * x
         order = np.lexsort((idx, -np.abs(contrib)))
         order = order[contrib[order] != 0][:k]
@@ -363,24 +205,32 @@ class Learner:
             raise InvalidInput("must be an integer class index", path="y")
         if not 0 <= int(y) < self.n_classes:
             raise InvalidInput(f"must lie in [0, {self.n_classes})", path="y")
-        idx, x = self._row(indices, values)
+        idx, x = check_row(indices, values, self.bits)
         return self._step(idx, x, int(y))
 
     def _step(self, idx: np.ndarray, x: np.ndarray, y: int) -> Update:
         """One checked row through the same kernels and tests as a chunk of one."""
         seg = np.zeros(idx.size, dtype=np.int64)
-        train = self._train(idx, x, seg, 1)
-        served = train if self.accum_ is None else self._serve(idx, x, seg, 1, float(self.seen))
+        train = train_margins(self.weights_, idx, x, seg, 1)
+        served = train
+        if self.accum_ is not None:
+            served = serve_margins(self.weights_, self.accum_, idx, x, seg, 1, float(self.seen))
         row = served[0]
         predicted = int(row[0] > 0) if self.rows == 1 else int(np.argmax(row))
         sq = 0.0  # only the passive-aggressive step needs ||x||²
         if self.rule == "passive_aggressive":
             sq = float(np.bincount(seg, weights=x * x, minlength=1)[0])
-        fired = self._fire_one(train[0], y, idx.size, sq)
+        fired = fire_one(train[0], y, idx.size, sq, rule=self.rule, margin=self.margin)
         if fired:
             self._apply(idx, x, y, train[0], sq)
         self.seen += 1
         return Update(predicted, predicted != y, row, fired)
+
+    def _apply(self, idx: np.ndarray, x: np.ndarray, y: int, train: np.ndarray, sq: float) -> None:
+        """Update the weights for one row that the rule fired on."""
+        apply_update(self.weights_, self.accum_, idx, x, y, train, sq, rule=self.rule,
+                     aggressiveness=self.aggressiveness, seen=self.seen)  # fmt: skip
+        self.updates += 1
 
     def update_batch(self, indptr: Any, indices: Any, values: Any, ys: Any) -> BatchUpdate:
         """Learn a CSR batch in order; identical to calling :meth:`update` row by row.
@@ -389,13 +239,13 @@ class Learner:
         rule fires on keep their (bit-identical) margins, that row is applied, and scoring
         resumes after it. The chunk length follows the observed gap between updates.
         """
-        ptr, idx, x = self._csr(indptr, indices, values)
+        ptr, idx, x = check_csr(indptr, indices, values, self.bits)
         n = ptr.size - 1
-        ys = self._labels_in(ys, n)
+        ys = check_labels(ys, n, self.n_classes)
         predicted = np.zeros(n, dtype=np.int64)
         margins = np.zeros((n, self.rows), dtype=np.float64)
         updated = np.zeros(n, dtype=bool)
-        seg_all, nnz = _segments(ptr), np.diff(ptr)
+        seg_all, nnz = segments(ptr), np.diff(ptr)
         sq = np.bincount(seg_all, weights=x * x, minlength=n)  # per row, as _step sums it
         start = 0
         while start < n:
@@ -409,13 +259,22 @@ class Learner:
             end = min(n, start + self._chunk)
             lo, hi = int(ptr[start]), int(ptr[end])
             m, sub_idx, xs, seg = end - start, idx[lo:hi], x[lo:hi], seg_all[lo:hi] - start
-            train = self._train(sub_idx, xs, seg, m)
+            train = train_margins(self.weights_, sub_idx, xs, seg, m)
             served = train
             if self.accum_ is not None:  # row j of the chunk is scored with c = seen + j
-                served = self._serve(sub_idx, xs, seg, m, (self.seen + seg).astype(np.float64))
-            fire = np.flatnonzero(self._fires(train, ys[start:end], nnz[start:end], sq[start:end]))
+                counts = (self.seen + seg).astype(np.float64)
+                served = serve_margins(self.weights_, self.accum_, sub_idx, xs, seg, m, counts)
+            fired = fires(
+                train,
+                ys[start:end],
+                nnz[start:end],
+                sq[start:end],
+                rule=self.rule,
+                margin=self.margin,
+            )
+            fire = np.flatnonzero(fired)
             stop = int(fire[0]) + 1 if fire.size else m
-            predicted[start : start + stop] = self._label(served[:stop])
+            predicted[start : start + stop] = labels_of(served[:stop])
             margins[start : start + stop] = served[:stop]
             if fire.size:
                 j = start + stop - 1
@@ -436,7 +295,7 @@ class Learner:
     def serving_weights(self) -> np.ndarray:
         """The served weights, float64 (rows, 2**bits); allocates O(2**bits), for inspection."""
         all_slots = np.arange(self.dim)
-        return self._served(all_slots, float(self.seen))
+        return served_weights(self.weights_, self.accum_, all_slots, float(self.seen))
 
     def nonzero(self) -> int:
         """Slots (columns) where a weight or the averaging accumulator is nonzero."""
