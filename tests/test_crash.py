@@ -10,6 +10,7 @@ from __future__ import annotations
 import asyncio
 import os
 import random
+import time
 from pathlib import Path
 from typing import Any
 
@@ -192,9 +193,16 @@ async def test_sigterm_writes_final_snapshot_and_exits_zero(tmp_path: Path) -> N
                 "/api/models/signups/labels",
                 {"labels": _labels(50, seed=3), "source": "s"},
             )
+            # A dashboard left open must not hold the shutdown to its deadline.
+            stream = await session.get(server.url + "/api/events")
+            assert stream.status == 200
         finally:
+            started = time.monotonic()
             code = server.stop()
+            stopped_in = time.monotonic() - started
+        stream.close()
     assert code == 0
+    assert stopped_in < 10, f"graceful stop took {stopped_in:.1f} s"
     snaps = list((tmp_path / "term" / "models" / "signups" / "snapshots").iterdir())
     assert any(p.name.endswith(".snap") for p in snaps), snaps
     assert os.path.isdir(tmp_path / "term" / "models" / "signups" / "log")

@@ -260,7 +260,7 @@ async def score(request: web.Request) -> web.Response:
     explain = body.get("explain", 0)
     if isinstance(explain, bool) or not isinstance(explain, int) or not 0 <= explain <= 50:
         raise InvalidInput("explain must be an integer from 0 to 50", path="explain")
-    results = model.score(
+    results = await model.score_shared(
         events, explain=explain, now=time.time(), bytes_hint=request.content_length or 0
     )
     return answer(request, {"results": results})
@@ -390,7 +390,10 @@ async def events_stream(request: web.Request) -> web.StreamResponse:
     await response.prepare(request)
     wanted = request.query.get("model")
     try:
+        stopping = request.app[STOPPING]
         for _ in range(3600):  # an hour; EventSource reconnects by itself
+            if stopping.is_set():
+                break
             for name in registry.names():
                 if wanted and name != wanted:
                     continue
@@ -402,7 +405,8 @@ async def events_stream(request: web.Request) -> web.StreamResponse:
                 info = registry.last_snapshot.get(name)
                 data["snapshot"] = None if info is None else _snapshot_json(info)
                 await response.write(f"event: quality\ndata: {json.dumps(data)}\n\n".encode())
-            await asyncio.sleep(1.0)
+            with contextlib.suppress(TimeoutError):
+                await asyncio.wait_for(stopping.wait(), 1.0)
     except (ConnectionResetError, asyncio.CancelledError):
         pass
     return response
@@ -438,11 +442,17 @@ async def page(request: web.Request) -> web.StreamResponse:
 # -- background work -----------------------------------------------------------------------
 
 BACKGROUND = web.AppKey("background", list)
+STOPPING = web.AppKey("stopping", asyncio.Event)
+
+
+async def _stop_streams(app: web.Application) -> None:
+    """Ends the page's event streams at shutdown, so they do not hold it to its deadline."""
+    app[STOPPING].set()
 
 
 async def _auto_snapshot(registry: ModelRegistry, name: str) -> None:
     try:
-        await registry.snapshot(name)
+        await registry.snapshot(name, automatic=True)
     except (ThresherError, OSError) as exc:
         logger.error("automatic snapshot of %s failed: %s", name, exc)
     except KeyError:
@@ -522,5 +532,7 @@ def create_app(settings: Settings, *, registry: ModelRegistry | None = None) -> 
     r.add_get("/readyz", readyz)
     r.add_get("/", page)
     r.add_get("/page/{file}", page)
+    app[STOPPING] = asyncio.Event()
+    app.on_shutdown.append(_stop_streams)
     app.cleanup_ctx.append(lifecycle_ctx)
     return app

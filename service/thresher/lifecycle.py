@@ -8,6 +8,10 @@ On disk, per model::
 
 Start-up loads each model's newest snapshot that verifies, then replays its log from the
 snapshot's offset; only then is the model (and `/readyz`) ready.
+
+With ``--log redis://...`` the definitions, label streams and snapshots live in Redis
+(`redislog`); the data directory holds only the lock, every replica adopts the models the
+Redis directory lists, and a follower per model applies its stream.
 """
 
 from __future__ import annotations
@@ -21,7 +25,7 @@ import shutil
 import time
 from collections.abc import Callable, Iterable
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from . import records
 from .errors import Conflict, InvalidConfig, NotFound
@@ -30,6 +34,9 @@ from .labellog import FileLog, LabelLog
 from .models import Model, ModelConfig
 from .settings import Settings
 from .snapshots import SnapshotInfo, SnapshotStore
+
+if TYPE_CHECKING:
+    from .redisstate import RedisState
 
 logger = logging.getLogger("thresher.models")
 CONFIG_FORMAT = 1
@@ -49,12 +56,24 @@ class ModelRegistry:
         self._since_snapshot: dict[str, int] = {}
         self._locks: dict[str, asyncio.Lock] = {}
         self.ready = False
+        self.shared = _shared_state(settings)
+        self._tokens: dict[str, str] = {}  # Redis mode: each model's incarnation token
+        self._watcher: asyncio.Future[None] | None = None
 
     # -- start and stop --------------------------------------------------------------------
 
     async def open(self) -> None:
         """Load every model found in the data directory, then mark the registry ready."""
         self.lock_data_dir()
+        if self.shared is not None:
+            try:
+                await self.shared.until_up(self._adopt)
+            except asyncio.CancelledError:
+                await self.close(snapshot=False)  # stopped while Redis was still down
+                raise
+            self._watcher = asyncio.ensure_future(self.shared.watch(self._adopt))
+            self.ready = True
+            return
         for path in sorted(self.root.iterdir()):
             if path.is_dir() and (path / "model.json").exists():
                 config = ModelConfig.from_stored(_read_config(path / "model.json"))
@@ -81,16 +100,21 @@ class ModelRegistry:
 
     async def close(self, *, snapshot: bool = True) -> None:
         """Write a final snapshot of each model that moved, then close every log."""
+        if self._watcher is not None:
+            self._watcher.cancel()
+            await asyncio.gather(self._watcher, return_exceptions=True)
         for name in list(self.models):
             model = self.models[name]
             info = self.last_snapshot.get(name)
             if snapshot and (info is None or info.offset != model.offset):
                 try:
-                    await self.snapshot(name)
+                    await self.snapshot(name, automatic=True)
                 except Exception:  # a failing disk must not stop the other models closing
                     logger.exception("final snapshot of %s failed", name)
             await model.log.close()
         self.models.clear()
+        if self.shared is not None:
+            await self.shared.close()
         fd = getattr(self, "_lock_fd", None)
         if fd is not None:
             os.close(fd)
@@ -112,6 +136,12 @@ class ModelRegistry:
         config = ModelConfig.from_json(body, created=self.clock())
         if config.name in self.models:
             raise Conflict(f"a model named {config.name!r} already exists", path="name")
+        if self.shared is not None:
+            async with self._lock(config.name):  # the directory watcher waits for this load
+                token = await self.shared.define(config.name, config.to_json())
+                model = self.models.get(config.name) or await self._load(config, None, token)
+            logger.info("created model %s in Redis", config.name)
+            return model
         path = self.root / config.name
         if path.exists():
             shutil.rmtree(path)  # a half-created or half-deleted leftover with no model.json
@@ -124,6 +154,11 @@ class ModelRegistry:
     async def delete(self, name: str) -> None:
         model = self.get(name)
         async with self._lock(name):
+            if self.shared is not None:
+                await self.shared.undefine(name, self._tokens[name])
+                await self._unload(name)
+                logger.info("deleted model %s from Redis", name)
+                return
             del self.models[name]
             await model.log.close()
             path = self.root / name
@@ -132,14 +167,50 @@ class ModelRegistry:
             await asyncio.to_thread(shutil.rmtree, trash, True)
         logger.info("deleted model %s", name)
 
-    async def _load(self, config: ModelConfig, path: Path) -> Model:
-        log = await self._open_log(config, path)
+    async def _adopt(self, found: dict[str, tuple[dict[str, Any], str]]) -> None:
+        """Redis mode: load the models the directory lists, drop those it no longer does."""
+        shared = self.shared
+        if shared is None:
+            return
+        # ``found`` may predate a create or delete made here meanwhile: check again under
+        # the model's lock before acting on it.
+        for name in list(self.models):
+            if name not in found or found[name][1] != self._tokens.get(name):
+                async with self._lock(name):
+                    if await shared.token(name) != self._tokens.get(name):
+                        await self._unload(name)
+        for name, (stored, token) in found.items():
+            if name in self.models:
+                continue
+            async with self._lock(name):
+                if name in self.models or await shared.token(name) != token:
+                    continue
+                try:
+                    await self._load(ModelConfig.from_stored(stored), None, token)
+                except InvalidConfig as exc:
+                    logger.error("model %s in the Redis directory is unusable: %s", name, exc)
+
+    async def _unload(self, name: str) -> None:
+        model = self.models.pop(name, None)
+        self._tokens.pop(name, None)
+        if model is not None:
+            await model.log.close()
+
+    async def _load(self, config: ModelConfig, path: Path | None, token: str = "") -> Model:
         s = self.settings
+        if self.shared is None:
+            where = path or self.root / config.name
+            log: LabelLog = await self._open_log(config, where)
+            store: Any = SnapshotStore(where / "snapshots", keep=s.snapshot_keep)
+        else:
+            log = shared_log = await self.shared.open_log(config.name, token)
+            store = self.shared.store(config.name, token, keep=s.snapshot_keep)
         cache = EventCache(
             max_entries=s.cache_entries, max_bytes=s.cache_bytes, ttl_seconds=s.cache_ttl
         )
-        model = Model(config, log, cache=cache, max_fields=s.max_fields)
-        store = SnapshotStore(path / "snapshots", keep=s.snapshot_keep)
+        model = Model(
+            config, log, cache=cache, max_fields=s.max_fields, apply_on_append=self.shared is None
+        )
         self.stores[config.name] = store
         loaded = await asyncio.to_thread(store.load_newest)
         self.snapshot_fallbacks[config.name] = 0
@@ -165,6 +236,9 @@ class ModelRegistry:
         )
         self.models[config.name] = model
         self._since_snapshot[config.name] = 0
+        if self.shared is not None:
+            self._tokens[config.name] = token
+            shared_log.follow(lambda: self.models.get(config.name), store)
         return model
 
     async def _open_log(self, config: ModelConfig, path: Path) -> LabelLog:
@@ -194,9 +268,20 @@ class ModelRegistry:
         every = self.settings.snapshot_every
         return bool(every) and self._since_snapshot[name] >= every
 
-    async def snapshot(self, name: str) -> SnapshotInfo:
+    async def snapshot(self, name: str, *, automatic: bool = False) -> SnapshotInfo:
         """Write a snapshot now; arrays are copied on the loop and written in a thread."""
         model = self.get(name)
+        if automatic and self.shared is not None:
+            # Replicas share the snapshots: skip when another one wrote a fresh one lately.
+            await asyncio.to_thread(self.stores[name].refresh)
+            newest = next(iter(self.stores[name].list()), None)
+            age = self.clock() - newest.time if newest is not None else 0.0
+            if newest is not None and (
+                newest.offset >= model.offset or age < self.settings.snapshot_interval / 2
+            ):
+                self.last_snapshot[name] = newest
+                self._since_snapshot[name] = 0
+                return newest
         state = model.state()
         self._since_snapshot[name] = 0
         info = await asyncio.to_thread(
@@ -224,6 +309,7 @@ class ModelRegistry:
         restart keeps the rollback instead of replaying the dropped labels.
         """
         model = self.get(name)
+        self._single_replica("restoring a snapshot")
         store = self.stores[name]
         if not any(i.generation == generation for i in store.list()):
             raise NotFound(f"model {name!r} has no snapshot generation {generation}")
@@ -252,6 +338,7 @@ class ModelRegistry:
     ) -> Model:
         """Relearn from the log while ignoring chosen sources (a poisoned label feed)."""
         model = self.get(name)
+        self._single_replica("rebuilding")
         excluded = frozenset(exclude_sources)
         async with self._lock(name):
             await model.quiesce("rebuilding")
@@ -289,6 +376,24 @@ class ModelRegistry:
 
     def _lock(self, name: str) -> asyncio.Lock:
         return self._locks.setdefault(name, asyncio.Lock())
+
+    def _single_replica(self, what: str) -> None:
+        if self.shared is not None:
+            raise Conflict(
+                f"{what} is not available with the Redis log: every replica would have to "
+                "switch state at the same stream offset; delete and re-create the model instead"
+            )
+
+
+def _shared_state(settings: Settings) -> RedisState | None:
+    if settings.log == "file":
+        return None
+    # Imported here so that the file log needs no Redis client installed.
+    from .redisstate import RedisState
+
+    return RedisState(
+        settings.log, wait_replicas=settings.redis_wait_replicas, event_ttl=settings.cache_ttl
+    )
 
 
 def _read_config(path: Path) -> dict[str, Any]:

@@ -15,7 +15,7 @@ import re
 from collections import deque
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Protocol, runtime_checkable
 
 import numpy as np
 
@@ -25,6 +25,7 @@ from .eventcache import EventCache
 from .features import FeatureSpec, Featurizer
 from .labellog import LabelLog
 from .learner import Learner
+from .learner_kernels import served_weights
 from .quality import Quality
 
 NAME_RE = re.compile(r"^[A-Za-z0-9_-]{1,64}$")
@@ -32,6 +33,8 @@ RULES = ("classic", "margin", "averaged", "passive_aggressive")
 STATE_FORMAT = 1
 RECENT_MISTAKES = 50
 EXPLAIN_MAX = 50
+OUTCOMES_KEPT = 1 << 17  # applied offsets whose mistake flag a waiting label request can read
+WAIT_APPLIED_SECONDS = 10.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -142,6 +145,22 @@ def _number(body: Mapping[str, Any], key: str, default: float) -> float:
     return float(value)
 
 
+@runtime_checkable
+class SharedLog(Protocol):
+    """A log several replicas append to: it admits labels exactly once and shares events."""
+
+    async def admit(
+        self, payloads: list[bytes], keys: list[tuple[str | None, str]]
+    ) -> tuple[int, list[int], tuple[int, str] | None]:
+        """Append the new records: (first offset, duplicate positions, (position, label))."""
+
+    async def share(self, scored: list[tuple[str, Any, str]], now: float) -> None:
+        """Publish scored events (id, fields, served label) to the other replicas."""
+
+    async def recall(self, ids: list[str]) -> dict[str, tuple[Any, str, float]]:
+        """Events scored on any replica, by id: (fields, served label, time)."""
+
+
 @dataclass(slots=True)
 class LabelAck:
     applied: int
@@ -169,6 +188,9 @@ class Model:
         # File mode applies right after the durable append; Redis mode applies what the
         # stream follower reads, so every replica applies the same records in the same order.
         self.apply_on_append = apply_on_append
+        self.shared = log if isinstance(log, SharedLog) else None
+        self._outcomes: dict[int, bool] = {}
+        self._rows: dict[int, Any] = {}  # shared log: rows of records admitted here, by offset
         self.spec = FeatureSpec.from_json(config.features)
         self.featurizer = Featurizer(self.spec, config.bits, config.seed, config.signed)
         self.class_index = {c: i for i, c in enumerate(config.classes)}
@@ -233,6 +255,18 @@ class Model:
                 self.cache.put(event_id, all_fields[i], label, now, size)
             results.append(result)
         self.scored += len(results)
+        return results
+
+    async def score_shared(
+        self, events: Sequence[Any], *, explain: int, now: float, bytes_hint: int = 0
+    ) -> list[dict[str, Any]]:
+        """Score; with a shared log, also publish events with ids so any replica can label them."""
+        results = self.score(events, explain=explain, now=now, bytes_hint=bytes_hint)
+        if self.shared is not None:
+            scored = [(r["id"], events[i]["fields"], r["label"])
+                      for i, r in enumerate(results) if r["id"] is not None]  # fmt: skip
+            if scored:
+                await self.shared.share(scored, now)
         return results
 
     def explain(self, fields: Mapping[str, Any], k: int, path: str) -> list[dict[str, Any]]:
@@ -308,8 +342,11 @@ class Model:
     async def _label(
         self, labels: Sequence[Any], *, source: str, now: float, wait: bool
     ) -> LabelAck:
+        if self.shared is not None:
+            await self._recall(self.shared, labels)
         payloads: list[bytes] = []
         rows: list[Any] = []
+        spots: list[int] = []
         fresh: dict[str, int] = {}
         duplicates = 0
         for i, item in enumerate(labels):
@@ -332,16 +369,24 @@ class Model:
                 fresh[event_id] = y
             payloads.append(records.encode(record))
             rows.append((record, row))
+            spots.append(i)
         self.duplicates += duplicates
         if not payloads:
             return LabelAck(0, duplicates, 0, self.log.head())
         self.pending.update(fresh)
         try:
-            first = await self.log.append(payloads)
+            if self.shared is not None:
+                ack = await self._admit(self.shared, payloads, rows, spots, duplicates, wait)
+            else:
+                first = await self.log.append(payloads)
         except BaseException:
             for event_id in fresh:
                 self.pending.pop(event_id, None)
             raise
+        if self.shared is not None:
+            for event_id in fresh:
+                self.pending.pop(event_id, None)
+            return ack
         last = first + len(payloads) - 1
         if self.apply_on_append:
             for k, (record, row) in enumerate(rows):
@@ -355,6 +400,61 @@ class Model:
         if self.apply_on_append or wait:
             mistakes = sum(1 for record, _ in rows if record.get("_mistake"))
         return LabelAck(len(payloads), duplicates, mistakes, last + 1)
+
+    async def _recall(self, shared: SharedLog, labels: Sequence[Any]) -> None:
+        """Fetch events scored on other replicas that these labels name by id alone."""
+        wanted = [
+            item["id"]
+            for item in labels
+            if isinstance(item, Mapping)
+            and isinstance(item.get("id"), str)
+            and item.get("fields") is None
+            and item["id"] not in self.applied
+            and item["id"] not in self.cache
+        ]
+        if not wanted:
+            return
+        for event_id, (fields, served, at) in (await shared.recall(wanted)).items():
+            y = self.class_index.get(served)
+            if y is not None:
+                self.cache.put(event_id, fields, y, at)
+
+    async def _admit(
+        self,
+        shared: SharedLog,
+        payloads: list[bytes],
+        rows: list[Any],
+        spots: list[int],
+        duplicates: int,
+        wait: bool,
+    ) -> LabelAck:
+        """Shared log: it decides duplicates and conflicts across replicas; a follower applies."""
+        keys = [(record["id"], record["label"]) for record, _ in rows]
+        first, repeated, conflict = await shared.admit(payloads, keys)
+        if conflict is not None:
+            k, existing = conflict
+            raise Conflict(
+                f"id {keys[k][0]!r} was already labelled {existing!r} (possibly on another "
+                "replica); labels are applied once",
+                path=f"labels[{spots[k]}].label",
+            )
+        self.duplicates += len(repeated)
+        duplicates += len(repeated)
+        count = len(payloads) - len(repeated)
+        if count == 0:
+            return LabelAck(0, duplicates, 0, self.log.head())
+        last = first + count - 1
+        skip = set(repeated)
+        kept = [row for k, (_, row) in enumerate(rows) if k not in skip]
+        for offset, row in enumerate(kept, start=first):
+            if offset >= self.offset:  # saves the follower featurizing them again
+                self._rows[offset] = row
+        mistakes: int | None = None
+        if wait:
+            await self.wait_applied(last, timeout=WAIT_APPLIED_SECONDS)
+            outcomes = [self._outcomes.get(o) for o in range(first, last + 1)]
+            mistakes = None if None in outcomes else sum(map(bool, outcomes))
+        return LabelAck(count, duplicates, mistakes, last + 1)
 
     def _label_record(
         self, item: Any, where: str, source: str, now: float
@@ -439,8 +539,13 @@ class Model:
         if offset != self.offset:
             raise RuntimeError(f"{self.name}: applying offset {offset}, expected {self.offset}")
         self.offset = offset + 1
+        if row is None and self._rows:
+            row = self._rows.pop(offset, None)
         if record["source"] not in self.exclude_sources:
             self._learn(record, row)
+        if not self.apply_on_append:  # the records a follower decodes are not the request's
+            self._outcomes[offset] = bool(record.get("_mistake"))
+            self._outcomes.pop(offset - OUTCOMES_KEPT, None)
         if self._waiters:
             for waiting in [o for o in self._waiters if o < self.offset]:
                 future = self._waiters.pop(waiting)
@@ -457,11 +562,11 @@ class Model:
                 row = self.featurizer.transform(record["fields"], path="fields")
             except InvalidEvent:
                 return  # accepted under the same spec, so unreachable unless the log is foreign
-        # Explain a mistake with the weights that made it, so look before the update.
-        top = None
-        if self.learner.predict(row.indices, row.values) != y:
-            top = self._tokens_explained(record["fields"], row)
-        update = self.learner.update(row.indices, row.values, y)
+        # Explain a mistake with the weights that made it: gather them before the update
+        # (a cheap take over this row's slots), turn them into tokens only on a mistake.
+        learner = self.learner
+        before = served_weights(learner.weights_, learner.accum_, row.indices, float(learner.seen))
+        update = learner.update(row.indices, row.values, y)
         served = record.get("served")
         served_index = self.class_index.get(served) if served is not None else None
         self.quality.record(
@@ -477,13 +582,36 @@ class Model:
         self.last_update = float(record.get("time") or 0.0)
         if update.mistake:
             record["_mistake"] = True
-            self.recent_mistakes.appendleft(self._mistake_entry(record, update, top or []))
+            top = self._explain_before(record["fields"], row, before, int(update.predicted))
+            self.recent_mistakes.appendleft(self._mistake_entry(record, update, top))
 
-    def _tokens_explained(self, fields: Mapping[str, Any], row: Any) -> list[dict[str, Any]]:
+    def _explain_before(
+        self, fields: Mapping[str, Any], row: Any, before: np.ndarray, predicted: int
+    ) -> list[dict[str, Any]]:
+        """Top tokens of a mistaken prediction, by |weight x value| under the weights used."""
+        weights = before[predicted if before.shape[0] > 1 else 0]
+        values = np.asarray(row.values, dtype=np.float64)
+        contrib = weights * values
+        order = np.lexsort((row.indices, -np.abs(contrib)))
+        order = order[contrib[order] != 0][:5]
+        if order.size == 0:
+            return []
         try:
-            return self.explain(fields, 5, "fields")
+            _, tokens = self.featurizer.transform_with_tokens(fields, path="fields")
         except InvalidEvent:
             return []
+        names: dict[int, str] = {}
+        for token, index, _value in tokens:
+            names.setdefault(int(index), token)
+        return [
+            {
+                "token": names.get(int(row.indices[i]), f"#{int(row.indices[i])}"),
+                "weight": float(weights[i]),
+                "value": float(values[i]),
+                "contribution": float(contrib[i]),
+            }
+            for i in order
+        ]
 
     def _mistake_entry(
         self, record: dict[str, Any], update: Any, top: list[dict[str, Any]]

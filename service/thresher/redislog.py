@@ -1,0 +1,367 @@
+"""The Redis Streams backend of the label log: one stream per model, and its follower.
+
+Keys; ``{name}`` is a hash tag, so one model lives in one Redis Cluster slot, and ``T`` is the
+model's incarnation token, so a model deleted and created again never meets its old keys::
+
+    thresher:models             hash    name -> {"config", "token"} (JSON), every model
+    thresher:{name}:live        string  the current token; the append script checks it
+    thresher:{name}:T:seq       counter records appended so far: the head offset
+    thresher:{name}:T:stream    stream  entry ``0-n`` holds offset n-1 in field ``d``
+    thresher:{name}:T:applied   hash    event id -> label: exactly-once admission
+    thresher:{name}:T:ev:ID     string  msgpack [fields, served label, time], with a TTL
+    thresher:{name}:T:snaps     hash    generation -> msgpack {offset, time, bytes, chunks}
+    thresher:{name}:T:snap:G:I  string  chunk I of snapshot generation G
+    thresher:{name}:T:snapgen, :snaplock  generation counter; writer lock (SET NX PX)
+
+One Lua script admits a batch atomically: a conflict refuses it whole, duplicates are left
+out, and every new record takes the next dense offset. Each replica's follower applies the
+stream in order, so replicas at one offset hold bit-identical weights. The clients, the model
+directory and the snapshot store are in `redisstate`.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import time
+from collections.abc import AsyncIterator, Callable
+from typing import TYPE_CHECKING, Any
+
+import msgpack
+from redis.exceptions import RedisError
+
+from . import records
+from .errors import LogUnavailable, NotFound, Unavailable
+from .labellog import LabelLog, OffsetOutOfRange
+
+if TYPE_CHECKING:
+    from .models import Model
+    from .redisstate import RedisSnapshots, RedisState
+
+READ_BATCH, BLOCK_MS, YIELD_EVERY = 1000, 1000, 16  # ~4 ms of applying between yields
+HEAD_EVERY, INDEX_EVERY = 0.25, 0.5  # seconds between the follower's head and index reads
+BACKOFF_MIN, BACKOFF_MAX, RETRY_AFTER = 0.05, 2.0, 2.0
+SHARE_TIMEOUT, WAIT_MS = 1.0, 1000
+OUTBOX_MAX, RECALL_GRACE = 10_000, 0.02  # queued scored events; second look for a miss
+ADMITTED, CONFLICT, GONE = 0, 1, 2  # the first element of the script's answer
+FAILURES = (RedisError, OSError)
+
+_log = logging.getLogger("thresher.redis")
+
+# KEYS: seq, stream, applied, live. ARGV: token, n, then n triples (id or "", label, payload).
+APPEND = """
+if redis.call('GET', KEYS[4]) ~= ARGV[1] then return {2} end
+local n = tonumber(ARGV[2])
+local dup = {}
+for i = 0, n - 1 do
+  local id = ARGV[3 + 3 * i]
+  if id ~= '' then
+    local have = redis.call('HGET', KEYS[3], id)
+    if have then
+      if have ~= ARGV[4 + 3 * i] then return {1, i, have} end
+      dup[i] = true
+    end
+  end
+end
+local first, count = -1, 0
+for i = 0, n - 1 do
+  local id = ARGV[3 + 3 * i]
+  if not dup[i] and id ~= '' and redis.call('HSETNX', KEYS[3], id, ARGV[4 + 3 * i]) == 0 then
+    dup[i] = true
+  end
+  if not dup[i] then
+    local seq = redis.call('INCR', KEYS[1])
+    redis.call('XADD', KEYS[2], '0-' .. seq, 'd', ARGV[5 + 3 * i])
+    if first < 0 then first = seq - 1 end
+    count = count + 1
+  end
+end
+local out = {0, first, count}
+for i = 0, n - 1 do if dup[i] then out[#out + 1] = i end end
+return out
+"""
+
+
+def _sid(offset: int) -> str:
+    """The stream entry id of a log offset (entry ids start at 0-1)."""
+    return f"0-{offset + 1}"
+
+
+def _offset(entry_id: bytes) -> int:
+    return int(entry_id.split(b"-", 1)[1]) - 1
+
+
+def unavailable(exc: BaseException, what: str) -> LogUnavailable:
+    return LogUnavailable(f"Redis is unreachable ({exc}); {what}", retry_after=RETRY_AFTER)
+
+
+class Keys:
+    """The key names of one incarnation of one model."""
+
+    def __init__(self, name: str, token: str) -> None:
+        self.live = f"thresher:{{{name}}}:live"
+        base = f"thresher:{{{name}}}:{token}:"
+        self.base = base
+        self.seq, self.stream, self.applied = base + "seq", base + "stream", base + "applied"
+        self.snaps, self.snapgen, self.lock = base + "snaps", base + "snapgen", base + "snaplock"
+
+    def event(self, event_id: str) -> str:
+        return f"{self.base}ev:{event_id}"
+
+    def chunk(self, generation: int, i: int) -> str:
+        return f"{self.base}snap:{generation}:{i}"
+
+
+class RedisLog(LabelLog):
+    """One model's label log as a Redis Stream, with its follower and shared event cache."""
+
+    def __init__(self, state: RedisState, name: str, token: str) -> None:
+        self.state, self.name, self.token = state, name, token
+        self.keys = Keys(name, token)
+        self._head = self._first = 0
+        self._task: asyncio.Task[None] | None = None
+        self._closing = False
+        self._outbox: list[tuple[str, bytes]] = []
+        self._wake = asyncio.Event()
+        self._writer: asyncio.Task[None] | None = None
+        self.events_dropped = 0  # scored events not shared: queue full or Redis down
+
+    async def refresh(self) -> None:
+        """Read the head and the first retained offset."""
+        try:
+            seq = await self.state.client.get(self.keys.seq)
+            oldest = await self.state.client.xrange(self.keys.stream, count=1)
+        except FAILURES as exc:
+            self.state.failed(exc)
+            raise unavailable(exc, "cannot read the label stream") from exc
+        self._head = int(seq or 0)
+        self._first = _offset(oldest[0][0]) if oldest else self._head
+
+    # -- the LabelLog interface ---------------------------------------------------------------
+
+    def head(self) -> int:
+        """The last stream length seen (by appends, the follower or reads)."""
+        return self._head
+
+    def first(self) -> int:
+        return self._first
+
+    async def append(self, payloads: list[bytes]) -> int:
+        """Append records that need no exactly-once check; returns the first offset."""
+        first, _, _ = await self.admit(payloads, [(None, "")] * len(payloads))
+        return first
+
+    async def read(self, start: int) -> AsyncIterator[tuple[int, bytes]]:
+        """Yield every record from ``start`` to the head as it was when reading began."""
+        await self.refresh()
+        end, cursor = self._head, start
+        if not self._first <= start <= end:
+            raise OffsetOutOfRange(f"offset {start} is outside the stream ({self._first}..{end})")
+        while cursor < end:
+            try:
+                batch = await self.state.client.xrange(
+                    self.keys.stream, min=_sid(cursor), max=_sid(end - 1), count=2000
+                )
+            except FAILURES as exc:
+                self.state.failed(exc)
+                raise unavailable(exc, "the stream could not be read") from exc
+            if not batch:
+                raise OffsetOutOfRange(f"offset {cursor} is no longer in the stream")
+            for entry_id, data in batch:
+                if _offset(entry_id) != cursor:
+                    raise OffsetOutOfRange(f"offset {cursor} is no longer in the stream")
+                yield cursor, data[b"d"]
+                cursor += 1
+
+    async def trim(self, below: int) -> None:
+        """Drop entries below ``below`` (XTRIM MINID); the lowest kept is ``below``."""
+        if below <= self._first:
+            return
+        try:
+            await self.state.client.xtrim(self.keys.stream, minid=_sid(below), approximate=False)
+        except FAILURES as exc:
+            self.state.failed(exc)
+            return  # a later snapshot trims again
+        self._first = below
+
+    async def close(self) -> None:
+        """Stop the follower; the clients belong to the RedisState."""
+        self._closing = True
+        if self._writer is not None:
+            self._writer.cancel()
+            await asyncio.wait({self._writer}, timeout=SHARE_TIMEOUT)
+        if self._task is not None:
+            # A cancel landing inside the client's read can come back as a ConnectionError;
+            # the flag ends the loop then, and the wait is bounded either way.
+            self._task.cancel()
+            await asyncio.wait({self._task}, timeout=BLOCK_MS / 1000)
+            self._task = None
+
+    # -- shared by every replica ------------------------------------------------------------
+
+    async def admit(
+        self, payloads: list[bytes], keys: list[tuple[str | None, str]]
+    ) -> tuple[int, list[int], tuple[int, str] | None]:
+        """Append what is new, atomically: (first offset, duplicate positions, conflict)."""
+        args: list[Any] = [self.token, len(payloads)]
+        for (event_id, label), payload in zip(keys, payloads, strict=True):
+            args += [event_id or "", label, payload]
+        ks = [self.keys.seq, self.keys.stream, self.keys.applied, self.keys.live]
+        want, confirmed = self.state.wait_replicas, None
+        try:
+            if want:
+                # WAIT counts this connection's writes, so it rides in the script's pipeline.
+                async with self.state.client.pipeline(transaction=False) as pipe:
+                    await self.state.append(keys=ks, args=args, client=pipe)
+                    pipe.wait(want, WAIT_MS)
+                    reply, confirmed = await pipe.execute()
+            else:
+                reply = await self.state.append(keys=ks, args=args)
+        except FAILURES as exc:
+            self.state.failed(exc)
+            raise unavailable(
+                exc,
+                "nothing was acknowledged. If the call timed out the labels may still be "
+                "applied; a retry with the same ids is safe (they count as duplicates)",
+            ) from exc
+        self.state.up()
+        code = int(reply[0])
+        if code == GONE:
+            raise NotFound(f"model {self.name!r} was deleted on another replica")
+        if code == CONFLICT:
+            return -1, [], (int(reply[1]), reply[2].decode())
+        first, count = int(reply[1]), int(reply[2])
+        if count:
+            self._head = max(self._head, first + count)
+        if count and confirmed is not None and int(confirmed) < want:
+            raise LogUnavailable(
+                f"the labels reached the Redis primary but only {confirmed} of {want} replicas "
+                f"confirmed them within {WAIT_MS} ms; they may still be applied later, and a "
+                "retry with the same ids is safe (they count as duplicates)",
+                retry_after=RETRY_AFTER,
+            )
+        return first, [int(i) for i in reply[3:]], None
+
+    async def share(self, scored: list[tuple[str, Any, str]], now: float) -> None:
+        """Queue scored events (id, fields, served label) for other replicas; never waits."""
+        # Awaiting the write would add a Redis round trip and an AOF fsync to every score.
+        if time.monotonic() < self.state.down_until or len(self._outbox) >= OUTBOX_MAX:
+            self.events_dropped += len(scored)
+            return
+        for event_id, fields, served in scored:
+            try:
+                value = msgpack.packb([fields, served, now], use_bin_type=True)
+            except (TypeError, ValueError):  # fields msgpack cannot hold: stay local
+                self.events_dropped += 1
+                continue
+            self._outbox.append((self.keys.event(event_id), value))
+        if self._writer is None:
+            self._writer = asyncio.get_running_loop().create_task(self._write_events())
+        self._wake.set()
+
+    async def _write_events(self) -> None:
+        """Send every queued scored event in one pipeline per wake-up."""
+        while not self._closing:
+            await self._wake.wait()
+            self._wake.clear()
+            batch, self._outbox = self._outbox, []
+            try:
+                async with self.state.client.pipeline(transaction=False) as pipe:
+                    for key, value in batch:
+                        pipe.set(key, value, ex=self.state.event_ttl)
+                    await asyncio.wait_for(pipe.execute(), SHARE_TIMEOUT)
+            except (*FAILURES, TimeoutError) as exc:
+                self.events_dropped += len(batch)
+                self.state.failed(exc)
+
+    async def recall(self, ids: list[str]) -> dict[str, tuple[Any, str, float]]:
+        """Events scored on any replica, by id: (fields, served label, time)."""
+        found = await self._recall(ids)
+        missing = [i for i in ids if i not in found]
+        if missing:  # another replica's writer may be a moment behind its score answer
+            await asyncio.sleep(RECALL_GRACE)
+            found.update(await self._recall(missing))
+        return found
+
+    async def _recall(self, ids: list[str]) -> dict[str, tuple[Any, str, float]]:
+        try:
+            values = await self.state.client.mget([self.keys.event(i) for i in ids])
+        except FAILURES as exc:
+            self.state.failed(exc)
+            raise unavailable(exc, "nothing was acknowledged") from exc
+        found = {}
+        for event_id, raw in zip(ids, values, strict=True):
+            try:
+                fields, served, at = msgpack.unpackb(raw, raw=False) if raw else (None, 0, 0)
+            except (ValueError, TypeError, msgpack.UnpackException):
+                continue
+            if isinstance(fields, dict) and isinstance(served, str):
+                found[event_id] = (fields, served, float(at))
+        return found
+
+    # -- the follower -----------------------------------------------------------------------
+
+    def follow(self, current: Callable[[], Model | None], store: RedisSnapshots) -> None:
+        """Start applying the stream to ``current()`` from its offset, in order, forever."""
+        self._task = asyncio.get_running_loop().create_task(self._follow(current, store))
+
+    async def _follow(self, current: Callable[[], Model | None], store: RedisSnapshots) -> None:
+        delay, head_due, index_due = BACKOFF_MIN, 0.0, time.monotonic() + INDEX_EVERY
+        while not self._closing and (model := current()) is not None and model.log is self:
+            try:
+                now = time.monotonic()
+                if now >= head_due:
+                    await self._refresh_head(model)
+                    head_due = now + HEAD_EVERY
+                if now >= index_due:
+                    store.adopt(await self.state.client.hgetall(store.keys.snaps))
+                    index_due = now + INDEX_EVERY
+                reply = await self.state.reader.xread(
+                    {self.keys.stream: _sid(model.offset - 1)}, count=READ_BATCH, block=BLOCK_MS
+                )
+                self.state.up()
+                for _, entries in reply or []:
+                    await self._apply(model, entries, store)
+                delay = BACKOFF_MIN
+            except (*FAILURES, Unavailable) as exc:
+                self.state.failed(exc)
+                await asyncio.sleep(delay)
+                delay = min(delay * 2, BACKOFF_MAX)
+            except Exception:  # a bad record: stop here, visibly (the lag grows), and retry
+                _log.exception("model %s: cannot apply stream offset %d", self.name, model.offset)
+                await asyncio.sleep(BACKOFF_MAX)
+
+    async def _refresh_head(self, model: Model) -> None:
+        seq = int(await self.state.client.get(self.keys.seq) or 0)
+        if seq < model.offset:
+            _log.error(
+                "model %s: Redis holds %d records but %d were applied here; was Redis restored "
+                "from an older copy? Acknowledged labels may be lost",
+                self.name, seq, model.offset,
+            )  # fmt: skip
+        self._head = seq
+
+    async def _apply(self, model: Model, entries: list[Any], store: RedisSnapshots) -> None:
+        for k, (entry_id, data) in enumerate(entries):
+            offset = _offset(entry_id)
+            if offset < model.offset:
+                continue
+            if offset > model.offset:
+                await self._resync(model, store, offset)
+                return
+            model.apply(offset, records.decode(data[b"d"]))
+            self._head = max(self._head, offset + 1)
+            if k % YIELD_EVERY == YIELD_EVERY - 1:
+                await asyncio.sleep(0)  # scoring and health checks between chunks of a catch-up
+
+    async def _resync(self, model: Model, store: RedisSnapshots, found: int) -> None:
+        """The stream was trimmed past this replica: jump to the newest snapshot."""
+        loaded = await asyncio.to_thread(store.load_newest)
+        if loaded is None or loaded[1].offset < found:
+            _log.error("model %s: stream starts at %d, past offset %d, and no snapshot covers "
+                       "the gap", self.name, found, model.offset)  # fmt: skip
+            await asyncio.sleep(BACKOFF_MAX)
+            return
+        model.load_state(loaded[0])
+        _log.warning("model %s: lagged past the trimmed stream; loaded snapshot at offset %d",
+                     self.name, model.offset)  # fmt: skip
