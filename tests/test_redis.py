@@ -34,7 +34,7 @@ from thresher.redisstate import RedisState
 from thresher.settings import Settings
 
 pytestmark = pytest.mark.redis
-CLASSES = ["benign", "malignant"]
+CLASSES = ["benign", "malignant"]  # the data set's target_names, in sorted order
 
 
 def _rows() -> list[dict[str, Any]]:
@@ -45,7 +45,7 @@ def _rows() -> list[dict[str, Any]]:
     return [
         {
             "fields": {n: float(v) for n, v in zip(names, x, strict=True)},
-            "label": "malignant" if y == 0 else "benign",
+            "label": str(data.target_names[y]),
         }
         for x, y in zip(data.data, data.target, strict=True)
     ]

@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import asyncio
 import hashlib
+import json
+import logging
 import re
 from collections import deque
 from collections.abc import Mapping, Sequence
@@ -28,6 +30,7 @@ from .learner import Learner
 from .learner_kernels import served_weights
 from .quality import Quality
 
+drift_logger = logging.getLogger("thresher.drift")
 NAME_RE = re.compile(r"^[A-Za-z0-9_-]{1,64}$")
 RULES = ("classic", "margin", "averaged", "passive_aggressive")
 STATE_FORMAT = 1
@@ -569,13 +572,15 @@ class Model:
         update = learner.update(row.indices, row.values, y)
         served = record.get("served")
         served_index = self.class_index.get(served) if served is not None else None
-        self.quality.record(
+        alarm = self.quality.record(
             y,
             int(update.predicted),
             source=record["source"],
             served=served_index,
             time=record.get("time"),
         )
+        if alarm:
+            self._log_drift()
         event_id = record.get("id")
         if event_id is not None:
             self.applied[event_id] = y
@@ -584,6 +589,18 @@ class Model:
             record["_mistake"] = True
             top = self._explain_before(record["fields"], row, before, int(update.predicted))
             self.recent_mistakes.appendleft(self._mistake_entry(record, update, top))
+
+    def _log_drift(self) -> None:
+        report = self.quality.report()
+        event = {
+            "event": "drift_alarm",
+            "model": self.name,
+            "offset": self.offset,
+            "labelled": report["labelled"],
+            "mistake_rate": report["mistake_rate"],
+            "alarms": report["drift"]["alarms"],
+        }
+        drift_logger.warning("drift alarm %s", json.dumps(event, sort_keys=True))
 
     def _explain_before(
         self, fields: Mapping[str, Any], row: Any, before: np.ndarray, predicted: int

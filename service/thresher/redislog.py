@@ -38,7 +38,7 @@ if TYPE_CHECKING:
     from .models import Model
     from .redisstate import RedisSnapshots, RedisState
 
-READ_BATCH, BLOCK_MS, YIELD_EVERY = 1000, 1000, 16  # ~4 ms of applying between yields
+READ_BATCH, BLOCK_MS, YIELD_EVERY = 1000, 1000, 16  # 1-2 ms of applying per yield
 HEAD_EVERY, INDEX_EVERY = 0.25, 0.5  # seconds between the follower's head and index reads
 BACKOFF_MIN, BACKOFF_MAX, RETRY_AFTER = 0.05, 2.0, 2.0
 SHARE_TIMEOUT, WAIT_MS = 1.0, 1000
