@@ -206,3 +206,40 @@ async def test_sigterm_writes_final_snapshot_and_exits_zero(tmp_path: Path) -> N
     snaps = list((tmp_path / "term" / "models" / "signups" / "snapshots").iterdir())
     assert any(p.name.endswith(".snap") for p in snaps), snaps
     assert os.path.isdir(tmp_path / "term" / "models" / "signups" / "log")
+
+
+async def test_flipped_byte_in_newest_snapshot_falls_back_to_older_one(tmp_path: Path) -> None:
+    server = Server(tmp_path / "flip", snapshot_interval=0, snapshot_every=0)
+    labels = _labels(300, seed=9)
+    async with aiohttp.ClientSession() as session:
+        server.start()
+        try:
+            await server.wait_ready(session)
+            await _post(session, server.url, "/api/models", MODEL)
+            for k in range(3):  # two snapshot generations, then labels only in the log
+                await _post(
+                    session,
+                    server.url,
+                    "/api/models/signups/labels",
+                    {"labels": labels[k * 100 : (k + 1) * 100], "source": "s"},
+                )
+                if k < 2:
+                    await _post(session, server.url, "/api/models/signups/snapshots", None)
+            before = await _digest(session, server.url)
+        finally:
+            server.kill()  # no final snapshot: the newest generation stays the damaged one
+        snaps = sorted((tmp_path / "flip" / "models" / "signups" / "snapshots").glob("*.snap"))
+        assert len(snaps) == 2
+        data = bytearray(snaps[-1].read_bytes())
+        data[len(data) // 2] ^= 0x01
+        snaps[-1].write_bytes(bytes(data))
+        server.start()
+        try:
+            await server.wait_ready(session)
+            after = await _digest(session, server.url)
+            async with session.get(server.url + "/metrics") as resp:
+                metrics = await resp.text()
+        finally:
+            server.stop()
+    assert after["digest"] == before["digest"] and after["offset"] == 300
+    assert 'thresher_snapshot_fallbacks_total{model="signups"} 1.0' in metrics
