@@ -222,6 +222,7 @@ class Model:
             aggressiveness=self.config.aggressiveness,
         )
         self.quality = Quality(list(self.config.classes))
+        self._weights_digest: tuple[tuple[int, int, int], str] | None = None
         self.applied: dict[str, int] = {}
         self.offset = 0
 
@@ -672,6 +673,7 @@ class Model:
         if state.get("format") != STATE_FORMAT:
             raise InvalidConfig(f"snapshot format {state.get('format')!r} is not supported")
         self.learner = Learner.from_state(state["learner"])
+        self._weights_digest = None
         self.quality = Quality.from_state(state["quality"])
         self.applied = {str(k): int(v) for k, v in state["applied"].items()}
         self.offset = int(state["offset"])
@@ -680,10 +682,22 @@ class Model:
         self.duplicates = int(state.get("duplicates", 0))
         self.last_update = float(state.get("last_update", 0.0))
 
+    def weights_digest(self) -> str:
+        """The learner's digest, hashed again only after the weights can have changed."""
+        learner = self.learner
+        # Weights change only through update calls, which move `seen`; a restore or rebuild
+        # installs a new learner object.
+        key = (id(learner), learner.seen, learner.updates)
+        cached = self._weights_digest
+        if cached is None or cached[0] != key:
+            cached = (key, learner.digest())
+            self._weights_digest = cached
+        return cached[1]
+
     def digest(self) -> str:
         """SHA-256 of the weights and the deterministic counters: equal means identical."""
         h = hashlib.sha256()
-        h.update(self.learner.digest().encode())
+        h.update(self.weights_digest().encode())
         h.update(self.quality.counters_digest().encode())
         return h.hexdigest()
 
@@ -698,7 +712,7 @@ class Model:
             offset=self.offset,
             head=self.log.head(),
             digest=self.digest(),
-            weights_digest=self.learner.digest(),
+            weights_digest=self.weights_digest(),
             nonzero=nonzero,
             hash_load=nonzero / float(1 << self.config.bits),
             cache_entries=len(self.cache),
