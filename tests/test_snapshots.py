@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import contextlib
 import hashlib
 import logging
 import os
@@ -10,7 +9,6 @@ import struct
 import subprocess
 import sys
 import time
-from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -18,7 +16,7 @@ import msgpack
 import numpy as np
 import pytest
 
-from conftest import require_binary
+from conftest import mounted_tmpfs
 from thresher.errors import NotFound, Unavailable
 from thresher.snapshots import CorruptSnapshot, SnapshotStore, decode, encode, read_header
 
@@ -255,25 +253,6 @@ def test_crash_mid_write_keeps_the_last_generation(tmp_path: Path) -> None:
     after = store.write({"w": np.zeros(3)}, offset=3, time=3.0)
     assert not any(".tmp-" in n for n in os.listdir(tmp_path))  # the dead writer's temp
     assert store.list()[0] == after
-
-
-@contextlib.contextmanager
-def mounted_tmpfs(path: Path, size: str) -> Iterator[Path]:
-    """A real tmpfs of ``size``; skips where this process may not mount."""
-    require_binary("mount")
-    path.mkdir(parents=True, exist_ok=True)
-    done = subprocess.run(
-        ["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs", str(path)],
-        capture_output=True,
-        timeout=60,
-    )
-    if done.returncode != 0:
-        pytest.skip(f"cannot mount a tmpfs here: {done.stderr.decode().strip()}")
-    try:
-        yield path
-    finally:
-        if subprocess.run(["umount", str(path)], capture_output=True, timeout=60).returncode:
-            subprocess.run(["umount", "-l", str(path)], capture_output=True, timeout=60)
 
 
 def test_full_disk_keeps_earlier_generations(tmp_path: Path) -> None:
