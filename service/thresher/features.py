@@ -31,11 +31,18 @@ import itertools
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+import numpy as np
+
 from .errors import InvalidEvent
 from .features_spec import KINDS as KINDS
 from .features_spec import FeatureSpec, FieldSpec, is_number, json_kind
 from .field_tokens import FieldTokens
 from .hashing import Batch, Hasher, SparseRow, to_csr, to_row
+
+try:  # the compiled fast path (_featurize.c); the Python path below is its reference
+    from . import _featurize
+except ImportError:  # pragma: no cover - a source checkout that was never built
+    _featurize = None  # type: ignore[assignment]
 
 __all__ = [
     "BIAS",
@@ -71,6 +78,11 @@ class Featurizer:
     bits, seed, signed : see :class:`Hasher` (defaults 20, 0, True)
     cache_size : int, default 65536
         Token-hash cache size of the underlying Hasher.
+    native : bool, default True
+        Use the compiled kernel (``thresher._featurize``) for :meth:`transform` and
+        :meth:`transform_batch` when it is built. It gives bit-identical rows and hands any
+        event it does not handle the same way (every error among them) to the Python path;
+        False forces the Python path, which tests compare it with.
 
     Errors are :class:`~thresher.errors.InvalidEvent` whose ``path`` extends the ``path``
     argument, e.g. ``events[3].fields.price``.
@@ -84,6 +96,7 @@ class Featurizer:
         signed: bool = True,
         *,
         cache_size: int = 65536,
+        native: bool = True,
     ) -> None:
         self.spec = spec
         self.hasher = Hasher(bits, seed, signed, cache_size)
@@ -95,6 +108,31 @@ class Featurizer:
         self._plan = tuple(
             (name, *self._emitter(name, fs), 0 if name not in crossed else self._mode(fs))
             for name, fs in spec.fields.items()
+        )
+        self._native = self._compile() if native and _featurize is not None else None
+
+    def _compile(self) -> Any:
+        """The spec as a compiled plan: fields in spec order, crosses as field indices."""
+        spec, order = self.spec, {name: i for i, name in enumerate(self.spec.fields)}
+        crossed = {name for cross in spec.crosses for name in cross}
+        fields = []
+        for name, fs in spec.fields.items():
+            kind = {"categorical": 0, "text": 1, "set": 4}.get(fs.kind)
+            if kind is None:
+                kind = 2 if fs.buckets is None else 3
+            cross = 0 if name not in crossed else self._mode(fs)
+            fields.append((name, kind, cross, fs.ngrams, fs.char_ngrams, fs.log1p, fs.clip,
+                           fs.buckets))  # fmt: skip
+        hasher = self.hasher
+        return _featurize.Plan(
+            fields,
+            [tuple(order[name] for name in cross) for cross in spec.crosses],
+            spec.strict,
+            spec.max_tokens,
+            spec.max_string_bytes // 4,  # longer strings: Python counts their UTF-8 bytes
+            hasher.seed,
+            hasher.bits,
+            hasher.signed,
         )
 
     @staticmethod
@@ -126,6 +164,12 @@ class Featurizer:
 
     def transform(self, fields: Mapping[str, Any], path: str = "fields") -> SparseRow:
         """One event's hashed vector."""
+        if self._native is not None:
+            made = self._native.row(fields)
+            if made is not None:
+                return SparseRow(
+                    np.frombuffer(made[0], np.int64), np.frombuffer(made[1], np.float32)
+                )
         tokens, values = self._collect(fields, path)
         return to_row(self._codes(tokens, fields, path), values)
 
@@ -143,6 +187,19 @@ class Featurizer:
 
     def transform_batch(self, events: Sequence[Mapping[str, Any]], path: str = "events") -> Batch:
         """Many events (field mappings) as one CSR batch; event i reports ``path[i].fields``."""
+        if self._native is not None:
+
+            def python_path(i: int) -> tuple[list[int], list[float]]:
+                where, fields = f"{path}[{i}].fields", events[i]
+                tokens, vals = self._collect(fields, where)
+                return self._codes(tokens, fields, where), vals
+
+            ptr, idx, val = self._native.batch(events, python_path)
+            return Batch(
+                np.frombuffer(ptr, np.int64),
+                np.frombuffer(idx, np.int64),
+                np.frombuffer(val, np.float32),
+            )
         codes: list[int] = []
         values: list[float] = []
         counts: list[int] = []
