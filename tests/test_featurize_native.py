@@ -28,7 +28,7 @@ if features._featurize is None:  # a source tree that was never built
         pytest.fail("thresher._featurize is not built; pip install the package", pytrace=False)
     pytest.skip("thresher._featurize is not built", allow_module_level=True)
 
-from thresher._featurize import murmur3_32  # noqa: E402
+from thresher._featurize import murmur3_32
 
 
 def test_murmur3_smhasher_verification_value() -> None:
@@ -71,8 +71,8 @@ def outcome(call: Any) -> Any:
 
 def same(native: Featurizer, python: Featurizer, events: list[Any]) -> None:
     for i, fields in enumerate(events):
-        a = outcome(lambda f=fields: native.transform(f, path=f"e{i}"))
-        b = outcome(lambda f=fields: python.transform(f, path=f"e{i}"))
+        a = outcome(lambda f=fields, i=i: native.transform(f, path=f"e{i}"))
+        b = outcome(lambda f=fields, i=i: python.transform(f, path=f"e{i}"))
         assert a == b, fields
     a = outcome(lambda: native.transform_batch(events))
     b = outcome(lambda: python.transform_batch(events))
