@@ -49,6 +49,11 @@ from .learner_kernels import (
     train_margins,
 )
 
+try:  # the compiled scoring kernel (_scoring.c); the numpy kernels are its reference
+    from . import _scoring
+except ImportError:  # pragma: no cover - a source checkout that was never built
+    _scoring = None  # type: ignore[assignment]
+
 RULES = ("classic", "margin", "averaged", "passive_aggressive")
 STATE_FORMAT = 1
 MAX_BITS = 30
@@ -158,11 +163,20 @@ class Learner:
         self.updates = 0
         self.seen = 0
         self._chunk = 64
+        # Score with the compiled kernel when built; False forces the numpy reference path.
+        self.native = True
 
     # -- scoring ---------------------------------------------------------------------------
 
     def score_batch(self, indptr: Any, indices: Any, values: Any) -> tuple[np.ndarray, np.ndarray]:
         """Labels int64[n] and served margins float64[n, rows] of a CSR batch."""
+        if _scoring is not None and self.native:
+            # Bit-identical to the numpy path below; None when the input needs its checks.
+            made = _scoring.margins(self.weights_, self.accum_, float(self.seen), self.rows,
+                                    indptr, indices, values)  # fmt: skip
+            if made is not None:
+                labels = np.frombuffer(made[0], np.int64)
+                return labels, np.frombuffer(made[1], np.float64).reshape(labels.size, self.rows)
         ptr, idx, x = check_csr(indptr, indices, values, self.bits)
         n = ptr.size - 1
         seen = float(self.seen)
@@ -298,11 +312,18 @@ class Learner:
         return served_weights(self.weights_, self.accum_, all_slots, float(self.seen))
 
     def nonzero(self) -> int:
-        """Slots (columns) where a weight or the averaging accumulator is nonzero."""
-        used = np.any(self.weights_ != 0, axis=0)
-        if self.accum_ is not None:
-            used |= np.any(self.accum_ != 0, axis=0)
-        return int(np.count_nonzero(used))
+        """Slots (columns) where a weight or the averaging accumulator is nonzero.
+
+        Counted over slices of about 2**20 weights, so the temporaries stay about a MiB.
+        """
+        step = max(1, (1 << 20) // self.rows)
+        count = 0
+        for lo in range(0, self.dim, step):
+            used = np.any(self.weights_[:, lo : lo + step] != 0, axis=0)
+            if self.accum_ is not None:
+                used |= np.any(self.accum_[:, lo : lo + step] != 0, axis=0)
+            count += int(np.count_nonzero(used))
+        return count
 
     def state(self) -> dict[str, Any]:
         """Config, counters and the live arrays (copy them before writing from a thread)."""

@@ -1,0 +1,130 @@
+"""The compiled scoring kernel (thresher._scoring) against the numpy path it must equal.
+
+The numpy kernels are checked against scikit-learn and a naive reference in test_learner.py;
+here ``Learner.score_batch`` with the kernel is held to the same call with ``native = False``:
+bit-identical labels and margins on every rule and class count, and the same InvalidInput for
+every malformed batch.
+"""
+
+from __future__ import annotations
+
+import os
+from typing import Any
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from thresher import learner as learner_module
+from thresher.errors import InvalidInput
+from thresher.learner import Learner
+
+if learner_module._scoring is None:
+    if os.environ.get("CI"):
+        pytest.fail("thresher._scoring is not built; pip install the package", pytrace=False)
+    pytest.skip("thresher._scoring is not built", allow_module_level=True)
+
+BITS = 12
+
+
+def trained(rule: str, n_classes: int, seed: int) -> Learner:
+    """A learner taught a few hundred random rows, so weights (and u) are far from zero."""
+    rng = np.random.default_rng(seed)
+    margin = 0.5 if rule == "margin" else 0.0
+    model = Learner(n_classes, BITS, rule=rule, margin=margin)
+    n = 300
+    lengths = rng.integers(1, 30, n)
+    indptr = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
+    indices = np.concatenate(
+        [np.sort(rng.choice(1 << BITS, k, replace=False)) for k in lengths]
+    ).astype(np.int64)
+    values = rng.normal(size=indices.size).astype(np.float32)
+    model.update_batch(indptr, indices, values, rng.integers(0, n_classes, n))
+    return model
+
+
+def both(model: Learner, *batch: Any) -> tuple[Any, Any]:
+    def run(native: bool) -> Any:
+        model.native = native
+        try:
+            labels, margins = model.score_batch(*batch)
+        except InvalidInput as error:
+            return ("error", str(error), error.path)
+        return (labels.dtype.str, labels.tolist(), margins.dtype.str, margins.shape,
+                margins.tobytes())  # fmt: skip
+
+    try:
+        return run(True), run(False)
+    finally:
+        model.native = True
+
+
+@pytest.mark.parametrize("rule", ["classic", "margin", "averaged", "passive_aggressive"])
+@pytest.mark.parametrize("n_classes", [2, 5])
+@settings(max_examples=40, deadline=None)
+@given(seed=st.integers(0, 2**16), rows=st.integers(0, 40), f64=st.booleans())
+def test_margins_are_bit_identical(
+    rule: str, n_classes: int, seed: int, rows: int, f64: bool
+) -> None:
+    model = trained(rule, n_classes, seed % 7)
+    rng = np.random.default_rng(seed)
+    lengths = rng.integers(0, 40, rows)
+    indptr = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
+    indices = np.concatenate(
+        [np.sort(rng.choice(1 << BITS, k, replace=False)) for k in lengths] or [[]]
+    ).astype(np.int64)
+    values = (rng.normal(size=indices.size) * 10 ** rng.uniform(-3, 3)).astype(
+        np.float64 if f64 else np.float32
+    )
+    native, reference = both(model, indptr, indices, values)
+    assert native == reference
+
+
+@pytest.mark.parametrize(
+    "batch",
+    [
+        ([0, 2], [5, 3], [1.0, 1.0]),  # not sorted within a row
+        ([0, 2], [5, 5], [1.0, 1.0]),  # repeated index
+        ([0, 1], [1 << BITS], [1.0]),  # out of range
+        ([0, 1], [-1], [1.0]),
+        ([0, 1], [3], [np.inf]),
+        ([0, 1], [3], [np.nan]),
+        ([0, 2, 1], [3, 4], [1.0, 1.0]),  # indptr falls
+        ([1, 2], [3, 4], [1.0, 1.0]),  # indptr does not start at 0
+        ([0, 3], [3, 4], [1.0, 1.0]),  # indptr passes the nonzeros
+        ([0, 1], [3], [1.0, 2.0]),  # values longer than indices
+    ],
+)
+def test_bad_batches_get_the_numpy_error(batch: tuple[list[Any], ...]) -> None:
+    model = trained("averaged", 2, 1)
+    arrays = (
+        np.array(batch[0], np.int64),
+        np.array(batch[1], np.int64),
+        np.array(batch[2], np.float32),
+    )
+    native, reference = both(model, *arrays)
+    assert reference[0] == "error"
+    assert native == reference
+
+
+def test_other_dtypes_take_the_numpy_path() -> None:
+    model = trained("classic", 3, 2)
+    batch = ([0, 2], [3, 9], [1, 2])  # plain lists of Python ints
+    native, reference = both(model, *batch)
+    assert native == reference and native[0] != "error"
+    int32 = (np.array([0, 2], np.int32), np.array([3, 9], np.int32), np.ones(2, np.float32))
+    native, reference = both(model, *int32)
+    assert native == reference and native[0] != "error"
+
+
+def test_a_nan_margin_ranks_as_numpy_does() -> None:
+    # Weights can overflow to inf under extreme values; inf - inf margins are NaN, which numpy's
+    # argmax ranks first and the binary threshold calls negative.
+    for n_classes in (2, 4):
+        model = Learner(n_classes, BITS)
+        model.weights_[:, 7] = np.inf
+        model.weights_[-1, 8] = -np.inf
+        model.weights_[0, 8] = -np.inf
+        native, reference = both(model, [0, 2], np.array([7, 8], np.int64), np.ones(2, np.float32))
+        assert native == reference
