@@ -10,6 +10,11 @@ command -v promtool >/dev/null || need_apt+=(prometheus)
 command -v chromium >/dev/null || need_apt+=(chromium)
 command -v chromedriver >/dev/null || need_apt+=(chromium-driver)
 command -v wrk >/dev/null || need_apt+=(wrk)
+# The featurizer and scoring kernels are C extensions: pip builds them with gcc and Python.h.
+command -v gcc >/dev/null || need_apt+=(gcc)
+"${PYTHON:-python3}" -c 'import os, sys, sysconfig
+sys.exit(not os.path.exists(os.path.join(sysconfig.get_paths()["include"], "Python.h")))' \
+    || need_apt+=(python3-dev)
 if [ "${#need_apt[@]}" -gt 0 ]; then
     echo "installing Debian packages: ${need_apt[*]}"
     SUDO=""
