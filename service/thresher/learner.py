@@ -49,12 +49,13 @@ from .learner_kernels import (
     train_margins,
 )
 
-try:  # the compiled scoring kernel (_scoring.c); the numpy kernels are its reference
-    from . import _scoring
+try:  # the compiled kernels (_learner.c); the numpy kernels are their reference
+    from . import _learner
 except ImportError:  # pragma: no cover - a source checkout that was never built
-    _scoring = None  # type: ignore[assignment]
+    _learner = None  # type: ignore[assignment]
 
 RULES = ("classic", "margin", "averaged", "passive_aggressive")
+_RULE_CODES = {rule: code for code, rule in enumerate(RULES)}  # as the enum in _learner.c
 STATE_FORMAT = 1
 MAX_BITS = 30
 MAX_SLOTS = 1 << 28  # rows * 2**bits float32 weights: 1 GiB
@@ -170,9 +171,9 @@ class Learner:
 
     def score_batch(self, indptr: Any, indices: Any, values: Any) -> tuple[np.ndarray, np.ndarray]:
         """Labels int64[n] and served margins float64[n, rows] of a CSR batch."""
-        if _scoring is not None and self.native:
+        if _learner is not None and self.native:
             # Bit-identical to the numpy path below; None when the input needs its checks.
-            made = _scoring.margins(self.weights_, self.accum_, float(self.seen), self.rows,
+            made = _learner.margins(self.weights_, self.accum_, float(self.seen), self.rows,
                                     indptr, indices, values)  # fmt: skip
             if made is not None:
                 labels = np.frombuffer(made[0], np.int64)
@@ -219,8 +220,27 @@ class Learner:
             raise InvalidInput("must be an integer class index", path="y")
         if not 0 <= int(y) < self.n_classes:
             raise InvalidInput(f"must lie in [0, {self.n_classes})", path="y")
+        if _learner is not None and self.native:
+            size = np.asarray(indices).size
+            made = self._learn_native(np.array([0, size]), indices, values, np.array([int(y)]))
+            if made is not None:
+                return Update(int(made[0][0]), bool(made[1][0]), made[2][0], bool(made[3][0]))
         idx, x = check_row(indices, values, self.bits)
         return self._step(idx, x, int(y))
+
+    def _learn_native(self, indptr: Any, indices: Any, values: Any, ys: Any) -> BatchUpdate | None:
+        """update_batch in the compiled kernel, or None when the input needs the numpy checks."""
+        made = _learner.learn(self.weights_, self.accum_, self.rows, _RULE_CODES[self.rule],
+                              self.margin, self.aggressiveness, float(self.seen), indptr,
+                              indices, values, ys)  # fmt: skip
+        if made is None:
+            return None
+        predicted = np.frombuffer(made[0], np.int64)
+        margins = np.frombuffer(made[1], np.float64).reshape(predicted.size, self.rows)
+        self.seen += predicted.size
+        self.updates += made[3]
+        mistakes = predicted != np.asarray(ys)
+        return BatchUpdate(predicted, mistakes, margins, np.frombuffer(made[2], np.bool_))
 
     def _step(self, idx: np.ndarray, x: np.ndarray, y: int) -> Update:
         """One checked row through the same kernels and tests as a chunk of one."""
@@ -251,8 +271,13 @@ class Learner:
 
         Rows are scored in chunks with the current weights; the rows before the first one the
         rule fires on keep their (bit-identical) margins, that row is applied, and scoring
-        resumes after it. The chunk length follows the observed gap between updates.
+        resumes after it. The chunk length follows the observed gap between updates. The
+        compiled kernel, when built, does the same row by row in one pass.
         """
+        if _learner is not None and self.native:
+            made = self._learn_native(indptr, indices, values, ys)
+            if made is not None:
+                return made
         ptr, idx, x = check_csr(indptr, indices, values, self.bits)
         n = ptr.size - 1
         ys = check_labels(ys, n, self.n_classes)

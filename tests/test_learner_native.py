@@ -1,4 +1,4 @@
-"""The compiled scoring kernel (thresher._scoring) against the numpy path it must equal.
+"""The compiled scoring kernel (thresher._learner) against the numpy path it must equal.
 
 The numpy kernels are checked against scikit-learn and a naive reference in test_learner.py;
 here ``Learner.score_batch`` with the kernel is held to the same call with ``native = False``:
@@ -20,10 +20,10 @@ from thresher import learner as learner_module
 from thresher.errors import InvalidInput
 from thresher.learner import Learner
 
-if learner_module._scoring is None:
+if learner_module._learner is None:
     if os.environ.get("CI"):
-        pytest.fail("thresher._scoring is not built; pip install the package", pytrace=False)
-    pytest.skip("thresher._scoring is not built", allow_module_level=True)
+        pytest.fail("thresher._learner is not built; pip install the package", pytrace=False)
+    pytest.skip("thresher._learner is not built", allow_module_level=True)
 
 BITS = 12
 
@@ -128,3 +128,82 @@ def test_a_nan_margin_ranks_as_numpy_does() -> None:
         model.weights_[0, 8] = -np.inf
         native, reference = both(model, [0, 2], np.array([7, 8], np.int64), np.ones(2, np.float32))
         assert native == reference
+
+
+def random_batch(rng: np.random.Generator, rows: int, f64: bool = False) -> tuple[Any, ...]:
+    lengths = rng.integers(0, 30, rows)
+    indptr = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
+    indices = np.concatenate(
+        [np.sort(rng.choice(1 << BITS, k, replace=False)) for k in lengths] or [[]]
+    ).astype(np.int64)
+    values = (rng.normal(size=indices.size) * 10 ** rng.uniform(-2, 2)).astype(
+        np.float64 if f64 else np.float32
+    )
+    return indptr, indices, values
+
+
+def learned(model: Learner) -> tuple[Any, ...]:
+    accum = None if model.accum_ is None else model.accum_.tobytes()
+    return model.weights_.tobytes(), accum, model.seen, model.updates, model.digest()
+
+
+@pytest.mark.parametrize("rule", ["classic", "margin", "averaged", "passive_aggressive"])
+@pytest.mark.parametrize("n_classes", [2, 4])
+@settings(max_examples=25, deadline=None)
+@given(seed=st.integers(0, 2**16), rows=st.integers(0, 60), f64=st.booleans())
+def test_update_batch_is_bit_identical(
+    rule: str, n_classes: int, seed: int, rows: int, f64: bool
+) -> None:
+    native, reference = trained(rule, n_classes, seed % 5), trained(rule, n_classes, seed % 5)
+    reference.native = False
+    rng = np.random.default_rng(seed)
+    for _ in range(3):  # several batches, so later ones start from learned weights
+        batch = random_batch(rng, rows, f64)
+        ys = rng.integers(0, n_classes, rows)
+        a = native.update_batch(*batch, ys)
+        b = reference.update_batch(*batch, ys)
+        for x, y in zip(a, b, strict=True):
+            assert x.dtype == y.dtype and x.tobytes() == y.tobytes()
+        assert learned(native) == learned(reference)
+
+
+@pytest.mark.parametrize("rule", ["classic", "margin", "averaged", "passive_aggressive"])
+@pytest.mark.parametrize("n_classes", [2, 3])
+def test_update_one_row_is_bit_identical(rule: str, n_classes: int) -> None:
+    native, reference = trained(rule, n_classes, 3), trained(rule, n_classes, 3)
+    reference.native = False
+    rng = np.random.default_rng(11)
+    for _ in range(200):
+        _, indices, values = random_batch(rng, 1)
+        y = int(rng.integers(0, n_classes))
+        a, b = native.update(indices, values, y), reference.update(indices, values, y)
+        assert (a.predicted, a.mistake, a.updated) == (b.predicted, b.mistake, b.updated)
+        assert a.margins.tobytes() == b.margins.tobytes()
+    assert learned(native) == learned(reference)
+
+
+@pytest.mark.parametrize(
+    "ys", [[0, 2], [0, -1], [True, False], [0.0, 1.0], [0]], ids=["range", "neg", "bool", "f", "n"]
+)
+def test_bad_labels_get_the_numpy_error_and_change_nothing(ys: list[Any]) -> None:
+    model = trained("averaged", 2, 4)
+    before = learned(model)
+    batch = (np.array([0, 1, 2], np.int64), np.array([3, 4], np.int64), np.ones(2, np.float32))
+    errors = []
+    for native in (True, False):
+        model.native = native
+        with pytest.raises(InvalidInput) as caught:
+            model.update_batch(*batch, np.asarray(ys))
+        errors.append((str(caught.value), caught.value.path))
+        assert learned(model) == before
+    assert errors[0] == errors[1]
+
+
+def test_a_malformed_batch_changes_nothing() -> None:
+    model = trained("classic", 3, 4)
+    before = learned(model)
+    # The second row is unsorted: the kernel must refuse before learning from the first.
+    batch = (np.array([0, 1, 3], np.int64), np.array([3, 9, 4], np.int64), np.ones(3, np.float32))
+    with pytest.raises(InvalidInput):
+        model.update_batch(*batch, np.array([0, 1]))
+    assert learned(model) == before
