@@ -42,6 +42,7 @@ from thresher import records
 from thresher.demo_traffic import DEMO_MODEL, ListingTraffic
 from thresher.eventcache import EventCache
 from thresher.labellog import FileLog
+from thresher.lifecycle import replay
 from thresher.models import Model, ModelConfig
 from thresher.redisstate import RedisState
 
@@ -200,8 +201,7 @@ async def _storage_rows(state: RedisState, tmp: Path, n: int) -> list[Row]:
     await log.close()
     peer = _model(filelog)
     start = time.perf_counter()
-    async for offset, payload in filelog.read(0):
-        peer.apply(offset, records.decode(payload))
+    await replay(peer)
     replay_s = time.perf_counter() - start
     await filelog.close()
     await state.undefine("bench", token)
@@ -212,7 +212,7 @@ async def _storage_rows(state: RedisState, tmp: Path, n: int) -> list[Row]:
         _row("stream read + decode, one reader (XREAD batches of 1,000)", n / read_s, "labels/s"),
         _row("replica catch-up apply rate from the stream", rate, "labels/s",
              peer=n / replay_s, peer_name="replay from the file log", goal=(">=", CATCH_UP_TARGET),
-             note="bound by Model.apply (featurize, predict, update, quality), not Redis"),
+             note="bound by Model.apply_batch (featurize, predict, update, quality), not Redis"),
     ]  # fmt: skip
 
 
@@ -268,13 +268,15 @@ async def _latency(
     log = await state.open_log("listings", token)
     other = Model(ModelConfig.from_stored(stored), log, cache=EventCache(), apply_on_append=False)
     seen: dict[int, float] = {}
-    apply = other.apply
+    apply_batch = other.apply_batch
 
-    def timed(offset: int, record: dict[str, Any], row: Any = None) -> None:
-        apply(offset, record, row)
-        seen[offset] = time.perf_counter()
+    def timed(first: int, recs: Any, rows: Any = None) -> None:
+        apply_batch(first, recs, rows)
+        now = time.perf_counter()
+        for k in range(len(recs)):
+            seen[first + k] = now
 
-    other.apply = timed  # type: ignore[method-assign]
+    other.apply_batch = timed  # type: ignore[method-assign]
     other.offset = log.head()  # this replica starts at the head: only new labels are timed
     log.follow(lambda: other, state.store("listings", token, keep=1))
     count = int(seconds * 100)

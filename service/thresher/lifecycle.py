@@ -27,7 +27,6 @@ from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from . import records
 from .errors import Conflict, InvalidConfig, NotFound
 from .eventcache import EventCache
 from .labellog import FileLog, LabelLog
@@ -40,6 +39,7 @@ if TYPE_CHECKING:
 
 logger = logging.getLogger("thresher.models")
 CONFIG_FORMAT = 1
+REPLAY_CHUNK = 2048  # log records applied as one batch
 
 
 class ModelRegistry:
@@ -250,15 +250,9 @@ class ModelRegistry:
             segment_bytes=s.segment_bytes,
         )
 
-    async def replay(self, model: Model, *, chunk: int = 2048) -> int:
-        """Apply every log record from the model's offset to the head, in order."""
-        count = 0
-        async for offset, payload in model.log.read(model.offset):
-            model.apply(offset, records.decode(payload))
-            count += 1
-            if count % chunk == 0:
-                await asyncio.sleep(0)  # let health checks and scoring through a long replay
-        return count
+    async def replay(self, model: Model, *, chunk: int = REPLAY_CHUNK) -> int:
+        """Apply every log record from the model's offset to the head, in order, in batches."""
+        return await replay(model, chunk=chunk)
 
     # -- snapshots -------------------------------------------------------------------------
 
@@ -383,6 +377,21 @@ class ModelRegistry:
                 f"{what} is not available with the Redis log: every replica would have to "
                 "switch state at the same stream offset; delete and re-create the model instead"
             )
+
+
+async def replay(model: Model, *, chunk: int = REPLAY_CHUNK) -> int:
+    """Apply the model's log from its offset to the head in batches of ``chunk``; the count."""
+    count = 0
+    payloads: list[bytes] = []
+    async for _, payload in model.log.read(model.offset):
+        payloads.append(payload)
+        if len(payloads) == chunk:
+            model.apply_payloads(model.offset, payloads)
+            count += len(payloads)
+            payloads = []
+            await asyncio.sleep(0)  # let health checks and scoring through a long replay
+    model.apply_payloads(model.offset, payloads)
+    return count + len(payloads)
 
 
 def _shared_state(settings: Settings) -> RedisState | None:

@@ -1,0 +1,280 @@
+"""Applying label records to a model's learner and counters, strictly in log order.
+
+:class:`Applying` is the part of :class:`~thresher.models.Model` that turns the records at the
+log's next offsets into learning: featurize, predict then update (progressive validation),
+count quality, remember applied ids, flag and explain mistakes, wake waiting requests.
+:meth:`Applying.apply` takes one record; :meth:`Applying.apply_batch` takes a run of
+consecutive records, featurizes them as one CSR batch and learns them through
+:func:`~thresher.batchlearn.learn_batch`, with a bit-identical result: the same weights, the
+same counters, the same recent mistakes explained with the same weights.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import logging
+from collections import deque
+from collections.abc import Mapping, Sequence
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from . import records
+from .batchlearn import learn_batch
+from .errors import InvalidEvent
+from .features import Featurizer, SparseRow
+from .learner import Learner
+from .learner_kernels import served_weights
+from .quality import Quality
+
+if TYPE_CHECKING:
+    from .models import ModelConfig
+
+drift_logger = logging.getLogger("thresher.drift")
+RECENT_MISTAKES = 50
+OUTCOMES_KEPT = 1 << 17  # applied offsets whose mistake flag a waiting label request can read
+
+
+class Applying:
+    """Log-order learning of a model; its state is set up by ``Model.__init__``."""
+
+    name: str
+    config: ModelConfig
+    featurizer: Featurizer
+    class_index: dict[str, int]
+    learner: Learner
+    quality: Quality
+    applied: dict[str, int]
+    offset: int
+    last_update: float
+    recent_mistakes: deque[dict[str, Any]]
+    exclude_sources: frozenset[str]
+    apply_on_append: bool
+    _outcomes: dict[int, bool]
+    _rows: dict[int, Any]
+    _waiters: dict[int, asyncio.Future[None]]
+
+    def apply(self, offset: int, record: dict[str, Any], row: Any = None) -> None:
+        """Apply the record at ``offset`` (must be the next one) to learner and counters."""
+        if offset != self.offset:
+            raise RuntimeError(f"{self.name}: applying offset {offset}, expected {self.offset}")
+        self.offset = offset + 1
+        if row is None and self._rows:
+            row = self._rows.pop(offset, None)
+        if record["source"] not in self.exclude_sources:
+            self._learn(record, row)
+        self._applied_through(offset, [record])
+
+    def apply_batch(
+        self, first: int, recs: Sequence[dict[str, Any]], rows: Sequence[Any] | None = None
+    ) -> None:
+        """Apply the records at offsets ``first, first + 1, ...``: the same as `apply` on each.
+
+        ``rows`` optionally holds each record's featurized row (None where it has none).
+        """
+        if len(recs) <= 1:  # one record is cheaper on its own than through the batch machinery
+            for record in recs:
+                self.apply(first, record, None if rows is None else rows[0])
+            return
+        if first != self.offset:
+            raise RuntimeError(f"{self.name}: applying offset {first}, expected {self.offset}")
+        given = list(rows) if rows is not None else [None] * len(recs)
+        if self._rows:
+            for k in range(len(recs)):
+                kept = self._rows.pop(first + k, None)
+                if given[k] is None:
+                    given[k] = kept
+        learned, ys = [], []
+        for k, record in enumerate(recs):
+            y = self.class_index.get(record["label"])
+            # A class list never changes, so only a foreign record has a label it lacks.
+            if y is not None and record["source"] not in self.exclude_sources:
+                learned.append(k)
+                ys.append(y)
+        learned, ys, (indptr, indices, values) = self._featurize_run(recs, given, learned, ys)
+        if learned:
+            keep = self.recent_mistakes.maxlen or 0
+            labels = np.asarray(ys, dtype=np.int64)
+            steps, befores = learn_batch(self.learner, indptr, indices, values, labels, keep=keep)
+            predicted, mistakes = steps.predicted.tolist(), steps.mistakes.tolist()
+            for j, k in enumerate(learned):
+                self.offset = first + k + 1  # a drift alarm logs the offset it fired at
+                before = befores.get(j)
+                row = None
+                if before is not None:
+                    a, b = int(indptr[j]), int(indptr[j + 1])
+                    row = SparseRow(indices[a:b], values[a:b])
+                margins = steps.margins[j]
+                self._count(recs[k], ys[j], predicted[j], mistakes[j], margins, row, before)
+        self.offset = first + len(recs)
+        self._applied_through(first, recs)
+
+    def apply_payloads(self, first: int, payloads: Sequence[bytes]) -> None:
+        """Decode and apply log payloads from offset ``first``.
+
+        A corrupt payload raises :class:`~thresher.records.CorruptRecord` once the records
+        before it are applied, as applying them one by one would.
+        """
+        recs: list[dict[str, Any]] = []
+        for payload in payloads:
+            try:
+                recs.append(records.decode(payload))
+            except records.CorruptRecord:
+                self.apply_batch(first, recs)
+                raise
+        self.apply_batch(first, recs)
+
+    def _featurize_run(
+        self, recs: Sequence[dict[str, Any]], given: list[Any], learned: list[int], ys: list[int]
+    ) -> tuple[list[int], list[int], tuple[np.ndarray, np.ndarray, np.ndarray]]:
+        """The learned records' rows as one CSR batch; records whose fields fail are dropped."""
+        missing = [k for k in learned if given[k] is None]
+        if len(missing) == len(learned):
+            try:
+                batch = self.featurizer.transform_batch(
+                    [recs[k]["fields"] for k in learned], path="fields"
+                )
+            except InvalidEvent:
+                pass  # accepted under the same spec, so only a foreign log gets here
+            else:
+                return learned, ys, (batch.indptr, batch.indices, batch.values)
+        rows = dict(zip(learned, (given[k] for k in learned), strict=True))
+        if missing:
+            try:
+                batch = self.featurizer.transform_batch(
+                    [recs[k]["fields"] for k in missing], path="fields"
+                )
+                rows.update((k, batch.row(i)) for i, k in enumerate(missing))
+            except InvalidEvent:
+                for k in missing:
+                    try:
+                        rows[k] = self.featurizer.transform(recs[k]["fields"], path="fields")
+                    except InvalidEvent:
+                        rows[k] = None  # skipped, as `apply` skips it
+        kept = [(k, y) for k, y in zip(learned, ys, strict=True) if rows[k] is not None]
+        sizes = [rows[k].indices.size for k, _ in kept]
+        indptr = np.zeros(len(kept) + 1, dtype=np.int64)
+        np.cumsum(sizes, out=indptr[1:])
+        parts = [rows[k] for k, _ in kept]
+        indices = np.concatenate([r.indices for r in parts] or [np.zeros(0, np.int64)])
+        values = np.concatenate([r.values for r in parts] or [np.zeros(0, np.float32)])
+        return [k for k, _ in kept], [y for _, y in kept], (indptr, indices, values)
+
+    def _applied_through(self, first: int, recs: Sequence[dict[str, Any]]) -> None:
+        """After records from ``first`` are applied: keep their outcomes, wake their waiters."""
+        if not self.apply_on_append:  # the records a follower decodes are not the request's
+            for k, record in enumerate(recs):
+                self._outcomes[first + k] = bool(record.get("_mistake"))
+                self._outcomes.pop(first + k - OUTCOMES_KEPT, None)
+        if self._waiters:
+            for waiting in [o for o in self._waiters if o < self.offset]:
+                future = self._waiters.pop(waiting)
+                if not future.done():
+                    future.set_result(None)
+
+    def _learn(self, record: dict[str, Any], row: Any) -> None:
+        y = self.class_index.get(record["label"])
+        if y is None:  # a class list never changes, so only a foreign record gets here
+            return
+        if row is None:
+            try:
+                row = self.featurizer.transform(record["fields"], path="fields")
+            except InvalidEvent:
+                return  # accepted under the same spec, so unreachable unless the log is foreign
+        # Explain a mistake with the weights that made it: gather them before the update
+        # (a cheap take over this row's slots), turn them into tokens only on a mistake.
+        learner = self.learner
+        before = served_weights(learner.weights_, learner.accum_, row.indices, float(learner.seen))
+        update = learner.update(row.indices, row.values, y)
+        self._count(record, y, update.predicted, update.mistake, update.margins, row, before)
+
+    def _count(
+        self,
+        record: dict[str, Any],
+        y: int,
+        predicted: int,
+        mistake: bool,
+        margins: np.ndarray,
+        row: Any,
+        before: np.ndarray | None,
+    ) -> None:
+        """Everything but the weights that learning one record changes."""
+        served = record.get("served")
+        alarm = self.quality.record(
+            y,
+            predicted,
+            source=record["source"],
+            served=None if served is None else self.class_index.get(served),
+            time=record.get("time"),
+        )
+        if alarm:
+            self._log_drift()
+        event_id = record.get("id")
+        if event_id is not None:
+            self.applied[event_id] = y
+        self.last_update = float(record.get("time") or 0.0)
+        if mistake:
+            record["_mistake"] = True
+            # A batch keeps weights only for mistakes that stay among the recent ones.
+            if before is not None:
+                top = self._explain_before(record["fields"], row, before, predicted)
+                self.recent_mistakes.appendleft(
+                    self._mistake_entry(record, predicted, margins, top)
+                )
+
+    def _log_drift(self) -> None:
+        report = self.quality.report()
+        event = {
+            "event": "drift_alarm",
+            "model": self.name,
+            "offset": self.offset,
+            "labelled": report["labelled"],
+            "mistake_rate": report["mistake_rate"],
+            "alarms": report["drift"]["alarms"],
+        }
+        drift_logger.warning("drift alarm %s", json.dumps(event, sort_keys=True))
+
+    def _explain_before(
+        self, fields: Mapping[str, Any], row: Any, before: np.ndarray, predicted: int
+    ) -> list[dict[str, Any]]:
+        """Top tokens of a mistaken prediction, by |weight x value| under the weights used."""
+        weights = before[predicted if before.shape[0] > 1 else 0]
+        values = np.asarray(row.values, dtype=np.float64)
+        contrib = weights * values
+        order = np.lexsort((row.indices, -np.abs(contrib)))
+        order = order[contrib[order] != 0][:5]
+        if order.size == 0:
+            return []
+        try:
+            _, tokens = self.featurizer.transform_with_tokens(fields, path="fields")
+        except InvalidEvent:
+            return []
+        names: dict[int, str] = {}
+        for token, index, _value in tokens:
+            names.setdefault(int(index), token)
+        return [
+            {
+                "token": names.get(int(row.indices[i]), f"#{int(row.indices[i])}"),
+                "weight": float(weights[i]),
+                "value": float(values[i]),
+                "contribution": float(contrib[i]),
+            }
+            for i in order
+        ]
+
+    def _mistake_entry(
+        self, record: dict[str, Any], predicted: int, margins: Any, top: list[dict[str, Any]]
+    ) -> dict[str, Any]:
+        predicted = int(predicted)
+        margins = np.asarray(margins, dtype=np.float64)
+        margin = float(margins[predicted] if margins.size > 1 else margins[0])
+        return {
+            "id": record.get("id"),
+            "label": record["label"],
+            "predicted": self.config.classes[predicted],
+            "margin": margin,
+            "source": record["source"],
+            "time": record.get("time"),
+            "top": top,
+        }
