@@ -427,6 +427,25 @@ def test_explain_ranks_contributions_of_the_served_row(n_classes: int) -> None:
     assert learner.explain(idx, val, 0) == []
 
 
+@pytest.mark.parametrize("n_classes, bits, rule", [(2, 21, "averaged"), (3, 20, "classic")])
+def test_nonzero_counts_used_columns_across_slices(n_classes: int, bits: int, rule: str) -> None:
+    learner = Learner(n_classes, bits, rule=rule)
+    rng = np.random.default_rng(8)
+    step = (1 << 20) // learner.rows  # the slice width nonzero() counts in
+    edges = [0, step - 1, step, 2 * step - 1, (1 << bits) - 1]
+    spread = [c for c in rng.choice(1 << bits, 500, replace=False) if c not in edges]
+    cols = [*edges, *spread]
+    values = [1.0, -0.0, np.nan, 2.0, -3.0, *rng.choice([0.0, 1.0, -1.0], len(spread))]
+    used = set()
+    for col, value in zip(cols, values, strict=True):
+        row = int(rng.integers(learner.rows))
+        target = learner.accum_ if learner.accum_ is not None and col % 2 else learner.weights_
+        target[row, int(col)] = value
+        if value != 0:  # NaN counts; -0.0 does not
+            used.add(int(col))
+    assert learner.nonzero() == len(used)
+
+
 def test_counters_nonzero_and_memory_layout() -> None:
     learner = Learner(2, 10, rule="averaged")
     assert learner.weights_.dtype == np.float32 and learner.weights_.shape == (1, 1024)

@@ -18,7 +18,15 @@ import pytest
 
 from conftest import mounted_tmpfs
 from thresher.errors import NotFound, Unavailable
-from thresher.snapshots import CorruptSnapshot, SnapshotStore, decode, encode, read_header
+from thresher.snapshots import (
+    CorruptSnapshot,
+    SnapshotStore,
+    Sparse,
+    capture,
+    decode,
+    encode,
+    read_header,
+)
 
 
 def same_bits(a: Any, b: Any) -> bool:
@@ -113,6 +121,61 @@ def test_sparse_or_dense_whichever_is_smaller() -> None:
     half = dense.copy()
     half[::2] = 0.0  # at half full, 8 bytes per stored value cost as much as dense
     assert (1 << 18) <= len(encode({"w": half})) < (1 << 18) + 1000
+
+
+def test_capture_takes_what_the_file_stores_in_slices() -> None:
+    rng = np.random.default_rng(11)
+    sparse = np.zeros((3, 5000), dtype=np.float32)
+    sparse[[0, 1, 2, 2], [0, 4999, 17, 2500]] = special_floats()  # in different slices
+    dense = rng.standard_normal((2, 700)).astype(np.float32)
+    wide = np.zeros(900, dtype=np.complex128)
+    wide.real[[5, 800]] = [-0.0, 3.0]  # 16-byte items: zero means all 16 bytes zero
+    # At exactly half full, 8 bytes per stored value cost as much as dense: dense wins.
+    half = np.where(np.arange(1000) % 2 == 0, 1.0, 0.0).astype(np.float32)
+    cases = {"sparse": sparse, "dense": dense, "wide": wide, "half": half,
+             "empty": np.zeros((0, 3), np.float32), "scalar": np.array(-0.0)}  # fmt: skip
+    kinds = {"sparse": Sparse, "wide": Sparse, "dense": np.ndarray, "half": np.ndarray,
+             "empty": np.ndarray, "scalar": np.ndarray}  # fmt: skip
+    for name, array in cases.items():
+        for step in (1, 7, 1000, 1 << 20):
+            taken = capture(array, step=step)
+            assert isinstance(taken, kinds[name]), (name, step)
+            if isinstance(taken, np.ndarray):
+                assert same_bits(taken, array) and not np.shares_memory(taken, array)
+            # Stored exactly as the array itself would be: the same file bytes.
+            assert encode({"a": taken}) == encode({"a": array}), (name, step)
+            assert same_bits(decode(encode({"a": taken}))["a"], array), (name, step)
+    taken = capture(sparse, step=1000)
+    assert isinstance(taken, Sparse)
+    assert taken.where.tolist() == [0, 9999, 10017, 12500] and taken.index_dtype == "<u4"
+    assert np.shares_memory(capture(dense, copy=False), dense)
+
+
+def test_store_streams_large_arrays_into_the_encoded_bytes(tmp_path: Path) -> None:
+    rng = np.random.default_rng(12)
+    dense = rng.standard_normal(3 << 20).astype(np.float32)  # 12 MiB: written in slices
+    sparse = np.zeros(1 << 22, dtype=np.float32)
+    sparse[rng.integers(0, 1 << 22, 5000)] = 1.5
+    state = {"learner": {"weights": capture(dense, step=1 << 18), "accum": capture(sparse)}}
+    info = SnapshotStore(tmp_path).write(state, offset=9, time=2.0)
+    data = info.path.read_bytes()
+    plain = {"learner": {"weights": dense, "accum": sparse}}
+    assert data == encode(plain, meta={"generation": 1, "offset": 9, "time": 2.0})
+    assert info.bytes == len(data)
+    back = SnapshotStore(tmp_path).load(1)["learner"]
+    assert same_bits(back["weights"], dense) and same_bits(back["accum"], sparse)
+
+
+def test_every_flipped_byte_of_a_captured_snapshot_is_rejected(tmp_path: Path) -> None:
+    sparse = np.zeros(4000, dtype=np.float32)
+    sparse[[1, 2000, 3999]] = special_floats()[:3]
+    state = {"w": capture(sparse, step=512), "u": capture(np.arange(40, dtype=np.float32))}
+    data = SnapshotStore(tmp_path).write(state, offset=1, time=1.0).path.read_bytes()
+    for position in range(len(data)):
+        damaged = bytearray(data)
+        damaged[position] ^= 0x01
+        with pytest.raises(CorruptSnapshot):
+            decode(bytes(damaged))
 
 
 def test_unsupported_values_are_refused() -> None:

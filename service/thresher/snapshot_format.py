@@ -14,6 +14,10 @@ hundred bytes and never the weights. numpy arrays anywhere in the state are stor
 and shape, dense or as (flat index, value) pairs, whichever is smaller; a value counts as zero
 only when all its bits are zero, so -0.0 and NaN payloads survive exactly. Array bytes live
 after the tree rather than inside it, so writing and loading large weights copies them once.
+
+:func:`capture` takes the copy a snapshot needs of a live array in slices, as :class:`Sparse`
+(its nonzero elements only) when that is what the file will store, so a mostly-zero model is
+never copied whole; the encoder writes a :class:`Sparse` exactly as it would the array.
 """
 
 from __future__ import annotations
@@ -21,7 +25,9 @@ from __future__ import annotations
 import hashlib
 import math
 import struct
+import time
 import zlib
+from dataclasses import dataclass
 from typing import Any
 
 import msgpack
@@ -37,6 +43,7 @@ ALIGN = 64
 MAX_HEADER_BYTES = 1 << 16
 EXT_ARRAY, EXT_SCALAR = 1, 2
 KINDS = "biufc"  # bool, signed, unsigned, float, complex: types whose bytes are the value
+SLICE = 1 << 20  # elements per slice of a capture: its temporaries stay a few MiB
 
 
 class CorruptSnapshot(Exception):
@@ -71,20 +78,103 @@ def _bits(flat: np.ndarray) -> np.ndarray:
     return flat.view(np.uint8).reshape(flat.size, size)
 
 
-def _pack_array(array: np.ndarray, blobs: _Blobs) -> msgpack.ExtType:
+@dataclass(frozen=True, slots=True)
+class Sparse:
+    """An array given by its nonzero elements, as a snapshot file stores it.
+
+    ``where`` holds flat (C-order) indices, ascending, as ``index_dtype``; ``bits`` the raw bits
+    of the elements there (see :func:`_bits`), so -0.0 and NaN payloads are kept exactly.
+    """
+
+    dtype: np.dtype[Any]
+    shape: tuple[int, ...]
+    index_dtype: str
+    where: np.ndarray
+    bits: np.ndarray
+
+
+def _index_dtype(size: int) -> str:
+    return "<u4" if size <= 2**32 else "<i8"
+
+
+def _yield_gil() -> None:
+    # numpy's nonzero counting keeps the GIL; a capture in a worker thread offers it to the
+    # event loop between slices, so scoring waits at most one slice.
+    time.sleep(0)
+
+
+def capture(array: np.ndarray, *, copy: bool = True, step: int = SLICE) -> np.ndarray | Sparse:
+    """The form a snapshot stores ``array`` in: :class:`Sparse` or a dense array.
+
+    Sparse when its nonzero elements with their indices take fewer bytes than the array;
+    they are found in slices of ``step`` elements, and the scan stops as soon as sparse cannot
+    win. A dense result is a copy made slice by slice when ``copy``, else ``array`` itself.
+    The caller keeps ``array`` unchanged meanwhile.
+    """
     if array.dtype.kind not in KINDS:
         raise TypeError(f"snapshot state cannot hold numpy arrays of dtype {array.dtype}")
     flat = np.ascontiguousarray(array).reshape(-1)
     bits = _bits(flat)
-    nonzero = bits.any(axis=1) if bits.ndim == 2 else bits
-    index_dtype = "<u4" if flat.size <= 2**32 else "<i8"
-    head = [flat.dtype.str, list(array.shape)]
-    if np.count_nonzero(nonzero) * (flat.dtype.itemsize + int(index_dtype[-1])) < flat.nbytes:
-        where = np.flatnonzero(nonzero).astype(index_dtype)
-        body = [*head, "sparse", index_dtype, *blobs.add(where.tobytes())]
-        body += blobs.add(bits[where].tobytes())
+    index_dtype = _index_dtype(flat.size)
+    per_item = flat.dtype.itemsize + int(index_dtype[-1])
+    found = _nonzero(bits, -(-flat.nbytes // per_item), index_dtype, step)
+    if found is not None:
+        return Sparse(flat.dtype, tuple(array.shape), index_dtype, *found)
+    if not copy:
+        return flat.reshape(array.shape)
+    out = np.empty_like(flat)
+    for lo in range(0, flat.size, step):
+        np.copyto(out[lo : lo + step], flat[lo : lo + step])
+        _yield_gil()
+    return out.reshape(array.shape)
+
+
+def _nonzero(
+    bits: np.ndarray, limit: int, index_dtype: str, step: int
+) -> tuple[np.ndarray, np.ndarray] | None:
+    """(flat indices, bits) of the nonzero elements; None when there are ``limit`` or more.
+
+    Counted in a first pass that stops at ``limit``, so a dense array is never gathered.
+    """
+    count = 0
+    for lo in range(0, bits.shape[0], step):
+        count += int(np.count_nonzero(_used(bits[lo : lo + step])))
+        if count >= limit:
+            return None
+        _yield_gil()
+    if count >= limit:  # an empty array: stored dense, as nothing beats zero bytes
+        return None
+    where = np.empty(count, index_dtype)
+    kept = np.empty((count, *bits.shape[1:]), bits.dtype)
+    at = 0
+    for lo in range(0, bits.shape[0], step):
+        part = bits[lo : lo + step]
+        local = np.flatnonzero(_used(part))
+        where[at : at + local.size] = local + lo
+        kept[at : at + local.size] = part[local]
+        at += local.size
+        _yield_gil()
+    return where, kept
+
+
+def _used(bits: np.ndarray) -> np.ndarray:
+    """Whether each element has a bit set, as bool (a row of bytes past 8-byte elements)."""
+    return bits.any(axis=1) if bits.ndim == 2 else bits != 0
+
+
+def _raw(array: np.ndarray) -> memoryview:
+    """The bytes of a C-contiguous array, without copying them."""
+    return memoryview(array.reshape(-1).view(np.uint8))
+
+
+def _pack_array(array: np.ndarray | Sparse, blobs: _Blobs) -> msgpack.ExtType:
+    if isinstance(array, np.ndarray):
+        array = capture(array, copy=False)
+    if isinstance(array, Sparse):
+        head = [array.dtype.str, list(array.shape), "sparse", array.index_dtype]
+        body = [*head, *blobs.add(_raw(array.where)), *blobs.add(_raw(array.bits))]
     else:
-        body = [*head, "dense", *blobs.add(flat.view(np.uint8).data)]
+        body = [array.dtype.str, list(array.shape), "dense", *blobs.add(_raw(array))]
     return msgpack.ExtType(EXT_ARRAY, msgpack.packb(body))
 
 
@@ -130,7 +220,7 @@ def _unpack_array(data: bytes, blobs: memoryview) -> np.ndarray:
 
 
 def _default(obj: Any, blobs: _Blobs) -> Any:
-    if isinstance(obj, np.ndarray):
+    if isinstance(obj, np.ndarray | Sparse):
         return _pack_array(obj, blobs)
     if isinstance(obj, np.generic) and obj.dtype.kind in KINDS:
         return msgpack.ExtType(EXT_SCALAR, msgpack.packb([obj.dtype.str, obj.tobytes()]))

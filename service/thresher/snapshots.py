@@ -32,6 +32,8 @@ from .snapshot_format import (
     TREE,
     VERSION,
     CorruptSnapshot,
+    Sparse,
+    capture,
     decode,
     decode_file,
     encode,
@@ -56,6 +58,8 @@ __all__ = [
     "Skipped",
     "SnapshotInfo",
     "SnapshotStore",
+    "Sparse",
+    "capture",
     "decode",
     "decode_file",
     "encode",
@@ -66,6 +70,7 @@ _NAME = re.compile(r"^(\d{12})\.snap$")
 _TEMP = re.compile(r"^\.(\d{12})\.snap\.tmp-(\d+)$")
 
 _log = logging.getLogger("thresher.snapshots")
+WRITE_SLICE = 1 << 22  # bytes hashed and written at a time
 
 
 @dataclass(frozen=True)
@@ -89,7 +94,8 @@ Skipped = list[tuple[SnapshotInfo, str]]  # generations load_newest passed over,
 class SnapshotStore:
     """Numbered snapshot generations in one directory, written atomically, newest ``keep`` kept.
 
-    ``write`` blocks (encode, write, fsync); run it in a worker thread with copies of arrays.
+    ``write`` blocks (encode, write, fsync); run it in a worker thread with copies of arrays
+    or their :func:`capture` forms. Arrays are written straight from those, never joined.
     """
 
     def __init__(self, directory: str | os.PathLike[str], keep: int = 5) -> None:
@@ -125,8 +131,11 @@ class SnapshotStore:
                 digest = hashlib.sha256()
                 with open(temp, "wb") as handle:
                     for part in parts:
-                        handle.write(part)
-                        digest.update(part)
+                        # Slices hashed just before they are written are still in the cache.
+                        view = memoryview(part)
+                        for lo in range(0, len(view), WRITE_SLICE):
+                            digest.update(view[lo : lo + WRITE_SLICE])
+                            handle.write(view[lo : lo + WRITE_SLICE])
                     handle.write(digest.digest())
                     handle.flush()
                     os.fsync(handle.fileno())
