@@ -58,6 +58,7 @@ class Labelling(Applying):
     duplicates: int
     frozen: str | None
     inflight: int
+    holds: int
     _idle: asyncio.Event
     _ready: dict[int, tuple[dict[str, Any], Any]]
     _fields: Callable[[Any, str], Mapping[str, Any]]  # Model's, shared with scoring
@@ -283,6 +284,8 @@ class Labelling(Applying):
 
     def _drain(self) -> None:
         """Apply every ready record from the applied offset on, as one batch."""
+        if self.holds:  # a snapshot is taking the weights; Model.resume drains again
+            return
         first, recs, rows = self.offset, [], []
         while first + len(recs) in self._ready:
             record, row = self._ready.pop(first + len(recs))

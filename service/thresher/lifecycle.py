@@ -263,7 +263,7 @@ class ModelRegistry:
         return bool(every) and self._since_snapshot[name] >= every
 
     async def snapshot(self, name: str, *, automatic: bool = False) -> SnapshotInfo:
-        """Write a snapshot now; arrays are copied on the loop and written in a thread."""
+        """Write a snapshot now; the state is captured and written by worker threads."""
         model = self.get(name)
         if automatic and self.shared is not None:
             # Replicas share the snapshots: skip when another one wrote a fresh one lately.
@@ -276,10 +276,10 @@ class ModelRegistry:
                 self.last_snapshot[name] = newest
                 self._since_snapshot[name] = 0
                 return newest
-        state = model.state()
         self._since_snapshot[name] = 0
+        state = await model.capture()
         info = await asyncio.to_thread(
-            self.stores[name].write, state, offset=model.offset, time=self.clock()
+            self.stores[name].write, state, offset=state["offset"], time=self.clock()
         )
         self.last_snapshot[name] = info
         await self._trim_log(model, self.stores[name])

@@ -21,7 +21,7 @@ from typing import Any
 import numpy as np
 
 from .applying import RECENT_MISTAKES
-from .errors import InvalidConfig, InvalidEvent
+from .errors import InvalidConfig, InvalidEvent, Unavailable
 from .eventcache import EventCache
 from .features import FeatureSpec, Featurizer
 from .labelling import LabelAck, Labelling, SharedLog
@@ -29,6 +29,7 @@ from .labelling import check_id as _event_id
 from .labellog import LabelLog
 from .learner import Learner
 from .quality import Quality
+from .snapshot_format import Sparse, capture
 
 __all__ = ["RULES", "LabelAck", "Model", "ModelConfig", "SharedLog"]
 
@@ -146,6 +147,11 @@ def _number(body: Mapping[str, Any], key: str, default: float) -> float:
     return float(value)
 
 
+def _capture_all(arrays: dict[str, np.ndarray]) -> dict[str, np.ndarray | Sparse]:
+    """Each array as a snapshot stores it; runs in a worker thread while applying is held."""
+    return {key: capture(array) for key, array in arrays.items()}
+
+
 class Model(Labelling):
     """One model's live state. All methods run on the event loop; none blocks on I/O."""
 
@@ -185,6 +191,10 @@ class Model(Labelling):
         self.inflight = 0
         self._idle = asyncio.Event()
         self._idle.set()
+        # Held while a snapshot takes the weights: labels are appended, applied after.
+        self.holds = 0
+        self._resumed = asyncio.Event()
+        self._resumed.set()
 
     def reset_learning(self) -> None:
         """Forget everything learned: empty weights, counters and applied ids at offset 0."""
@@ -197,6 +207,7 @@ class Model(Labelling):
         )
         self.quality = Quality(list(self.config.classes))
         self._weights_digest: tuple[tuple[int, int, int], str] | None = None
+        self._nonzero: tuple[tuple[int, int, int], int] | None = None
         self.applied: dict[str, int] = {}
         self.offset = 0
 
@@ -297,15 +308,57 @@ class Model(Labelling):
 
     def state(self) -> dict[str, Any]:
         """Everything a snapshot holds; arrays are copies, safe to write from a thread."""
-        learner_state = {
-            k: (v.copy() if isinstance(v, np.ndarray) else v)
-            for k, v in self.learner.state().items()
-        }
+        state = self._state()
+        for key, value in state["learner"].items():
+            if isinstance(value, np.ndarray):
+                state["learner"][key] = value.copy()
+        return state
+
+    async def capture(self) -> dict[str, Any]:
+        """:meth:`state` at the applied offset, taken without stalling scoring.
+
+        Label application is held while a worker thread takes the arrays slice by slice, as
+        the snapshot will store them (a mostly-zero array as its nonzero elements, never
+        copied whole); labels are still appended to the log meanwhile and applied after.
+        """
+        self.hold()
+        try:
+            state, learner = self._state(), self.learner
+            live = state["learner"]
+            arrays = {k: v for k, v in live.items() if isinstance(v, np.ndarray)}
+            live.update(await asyncio.to_thread(_capture_all, arrays))
+            if self.learner is not learner or self.offset != state["offset"]:
+                raise Unavailable(
+                    f"model {self.name!r} changed state while a snapshot was taken; retry",
+                    retry_after=1.0,
+                )
+        finally:
+            self.resume()
+        return state
+
+    def hold(self) -> None:
+        """Stop applying labels until :meth:`resume`; they are still appended, scoring goes on."""
+        self.holds += 1
+        self._resumed.clear()
+
+    def resume(self) -> None:
+        """Undo one :meth:`hold`; the last one applies the labels that arrived meanwhile."""
+        self.holds -= 1
+        if self.holds == 0:
+            self._resumed.set()
+            self._drain()
+
+    async def until_resumed(self) -> None:
+        """Return once no :meth:`hold` is in force (appliers other than ``_drain`` wait here)."""
+        await self._resumed.wait()
+
+    def _state(self) -> dict[str, Any]:
+        """:meth:`state` with the learner's live arrays in it."""
         return {
             "format": STATE_FORMAT,
             "config": self.config.to_json(),
             "offset": self.offset,
-            "learner": learner_state,
+            "learner": self.learner.state(),
             "quality": self.quality.state(),
             "applied": dict(self.applied),
             "excluded": sorted(self.exclude_sources),
@@ -319,7 +372,7 @@ class Model(Labelling):
         if state.get("format") != STATE_FORMAT:
             raise InvalidConfig(f"snapshot format {state.get('format')!r} is not supported")
         self.learner = Learner.from_state(state["learner"])
-        self._weights_digest = None
+        self._weights_digest = self._nonzero = None
         self.quality = Quality.from_state(state["quality"])
         self.applied = {str(k): int(v) for k, v in state["applied"].items()}
         self.offset = int(state["offset"])
@@ -347,9 +400,19 @@ class Model(Labelling):
         h.update(self.quality.counters_digest().encode())
         return h.hexdigest()
 
+    def nonzero(self) -> int:
+        """The learner's used slots, counted again only after the weights can have changed."""
+        learner = self.learner
+        key = (id(learner), learner.seen, learner.updates)  # as in weights_digest
+        cached = self._nonzero
+        if cached is None or cached[0] != key:
+            cached = (key, learner.nonzero())
+            self._nonzero = cached
+        return cached[1]
+
     def summary(self) -> dict[str, Any]:
         report = self.config.to_json()
-        nonzero = int(self.learner.nonzero())
+        nonzero = self.nonzero()
         report.update(
             labelled=int(self.quality.labelled),
             mistakes=int(self.quality.mistakes),

@@ -342,6 +342,7 @@ class RedisLog(LabelLog):
 
     async def _apply(self, model: Model, entries: list[Any], store: RedisSnapshots) -> None:
         """Apply the entries that continue the model's offset, YIELD_EVERY at a time."""
+        await model.until_resumed()  # not while a snapshot is taking the weights
         payloads: list[bytes] = []
         for entry_id, data in entries:
             offset = _offset(entry_id)
@@ -356,6 +357,7 @@ class RedisLog(LabelLog):
                 self._apply_run(model, payloads)
                 payloads = []
                 await asyncio.sleep(0)  # scoring and health checks between chunks of a catch-up
+                await model.until_resumed()
         self._apply_run(model, payloads)
 
     def _apply_run(self, model: Model, payloads: list[bytes]) -> None:
