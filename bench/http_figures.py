@@ -14,7 +14,7 @@ from typing import Any
 
 from . import wrk
 from .common import Mode, cpus, median, missing_row, model_body, on_cpu, row
-from .servers import Server, ServerFailed
+from .servers import Server, ServerFailed, event_loop
 
 CONNECTIONS = 32
 BATCH = 100
@@ -106,7 +106,7 @@ def run(mode: Mode, tmp: Path) -> list[dict[str, Any]]:
             "lazy_labels": (lazy, LABELS, files["labels100"]),
         }
         got = measure_cases(cases, mode)
-    conns = f"{CONNECTIONS} connections, keep-alive, wrk on its own CPU"
+    conns = f"{CONNECTIONS} connections, keep-alive, wrk on its own CPU, servers on {event_loop()}"
     peer1 = got["peer1"]
     peer1_text = (
         f"{median([x.per_second for x in peer1]):,.0f} req/s"

@@ -5,6 +5,8 @@
 FeatureHasher and Perceptron in an aiohttp app: tokenise the fields, hash, ``decision_function``
 to score, ``partial_fit`` to learn. It keeps nothing on disk. ``--kind floor`` parses the JSON
 body of any POST and answers a fixed small JSON object: the cost of aiohttp and JSON alone.
+``--loop`` picks the event loop as ``thresher serve --loop`` does, so every server in a
+comparison runs on the same one.
 """
 
 from __future__ import annotations
@@ -14,6 +16,8 @@ import json
 from typing import Any
 
 from aiohttp import web
+
+from thresher.cli import new_event_loop
 
 from . import peer_tokens
 from .common import BITS, CLASSES, demo_events
@@ -79,9 +83,11 @@ def main(argv: list[str] | None = None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--kind", choices=("sklearn", "floor"), required=True)
     parser.add_argument("--port", type=int, required=True)
+    parser.add_argument("--loop", choices=("auto", "uvloop", "asyncio"), default="auto")
     args = parser.parse_args(argv)
+    loop = new_event_loop(args.loop)
     app = sklearn_app() if args.kind == "sklearn" else floor_app()
-    web.run_app(app, host="127.0.0.1", port=args.port, access_log=None, print=None)
+    web.run_app(app, host="127.0.0.1", port=args.port, access_log=None, print=None, loop=loop)
 
 
 if __name__ == "__main__":

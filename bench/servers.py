@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import importlib.util
 import json
 import subprocess
 import sys
@@ -16,6 +17,11 @@ from typing import Any
 from .common import ROOT, demo_events, free_port, on_cpu
 
 READY_TIMEOUT = 60.0
+
+
+def event_loop() -> str:
+    """The loop every server under test runs on: uvloop when installed (thresher's default)."""
+    return "uvloop" if importlib.util.find_spec("uvloop") else "asyncio"
 
 
 class ServerFailed(RuntimeError):
@@ -46,9 +52,9 @@ class Server:
             launch = ["bench.gcwatch", str(self.gc_log)] if self.gc_log else ["thresher.cli"]
             return [sys.executable, "-m", *launch, "serve", "--data-dir",
                     str(self.data_dir), "--port", str(self.port), "--log-level", "warning",
-                    *self.options]  # fmt: skip
+                    "--loop", event_loop(), *self.options]  # fmt: skip
         return [sys.executable, "-m", "bench.peer_app", "--kind", self.kind, "--port",
-                str(self.port)]  # fmt: skip
+                str(self.port), "--loop", event_loop()]  # fmt: skip
 
     def __enter__(self) -> Server:
         with on_cpu(self.cpu):

@@ -205,3 +205,59 @@ def test_matches_naive_reference(
             assert len(cache) == len(naive.items)
             assert cache.bytes == sum(item[3] for item in naive.items)
         assert len(cache) <= max_entries and cache.bytes <= max_bytes
+
+
+_field_values = st.recursive(
+    st.none()
+    | st.booleans()
+    | st.integers()  # beyond 64 bits too: msgpack cannot carry those
+    | st.floats()  # NaN, infinities and -0.0 included
+    | st.text(st.characters(codec=None), max_size=10)  # lone surrogates included
+    | st.binary(max_size=8),
+    lambda inner: (
+        st.lists(inner, max_size=4)
+        | st.tuples(inner, inner)
+        | st.dictionaries(st.text(max_size=6), inner, max_size=4)
+    ),
+    max_leaves=20,
+)
+
+
+def _same(a: Any, b: Any) -> bool:
+    """Equal with the same types all the way down; floats by their bits (NaN, -0.0)."""
+    if type(a) is not type(b):
+        return False
+    if isinstance(a, dict):
+        return list(a) == list(b) and all(_same(a[k], b[k]) for k in a)
+    if isinstance(a, list | tuple):
+        return len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b, strict=True))
+    if isinstance(a, float):
+        return repr(a) == repr(b)
+    return bool(a == b)
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.dictionaries(st.text(max_size=8), _field_values, max_size=6))
+def test_fields_come_back_exactly_as_put(fields: dict[str, Any]) -> None:
+    cache = EventCache(ttl_seconds=100.0)
+    cache.put("a", fields, 1, 0.0, size=10)
+    cache.put("b", fields, 0, 0.0, size=10)
+    got = cache.get("a", 1.0)
+    assert got is not None and _same(got.fields, fields) and got.served == 1
+    popped = cache.pop("b")
+    assert popped is not None and _same(popped.fields, fields) and popped.served == 0
+
+
+def test_entries_are_not_tracked_by_the_garbage_collector() -> None:
+    import gc
+
+    cache = EventCache(ttl_seconds=100.0)
+    fields = {"title": "a phone", "tags": ["new", "boxed"], "price": 3.5, "seen": None}
+    for i in range(1000):
+        cache.put(f"e{i}", dict(fields), i % 2, 0.0, size=10)
+    gc.collect()  # the collector untracks tuples whose items are all untracked
+    held = gc.get_referents(cache._entries)  # the layout itself is what is tested here
+    tracked = [x for x in held if gc.is_tracked(x)]
+    assert len(held) == 2000 and tracked == []  # 1000 ids and 1000 entries
+    got = cache.get("e7", 1.0)
+    assert got is not None and got.fields == fields and got.served == 1

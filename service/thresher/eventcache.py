@@ -10,6 +10,13 @@ Byte accounting: ``put(..., size=n)`` charges exactly ``n`` bytes for the whole 
 caller usually knows it cheaply (the request body's bytes per event, or the length of the
 msgpack/JSON encoding it already did). Without ``size`` the cache estimates it with
 :func:`estimate_size`.
+
+Layout: a full cache holds 100,000 events, and as dicts and lists each would be several objects
+the garbage collector walks on every full collection (pauses of hundreds of milliseconds). So
+an entry is a plain tuple whose fields are packed as msgpack bytes: nothing in it is tracked by
+the collector. ``get`` and ``pop`` unpack them into a :class:`CachedEvent`; fields msgpack
+cannot carry exactly (integers beyond 64 bits, text with lone surrogates, other mappings) are
+kept as the object itself.
 """
 
 from __future__ import annotations
@@ -18,6 +25,8 @@ from collections import OrderedDict
 from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
+
+import msgpack
 
 from .errors import InvalidConfig
 
@@ -38,6 +47,32 @@ class CachedEvent:
     served: int
     time: float
     size: int
+
+
+# An entry: (fields as msgpack bytes or the mapping itself, served class, time, byte charge).
+_Entry = tuple[bytes | Mapping[str, Any], int, float, int]
+_FIELDS, _SERVED, _TIME, _SIZE = range(4)
+
+
+def _pack(fields: Mapping[str, Any]) -> bytes | Mapping[str, Any]:
+    if type(fields) is dict:
+        try:
+            # Exact types only: a tuple or a float subclass would come back as something else.
+            packed: bytes = msgpack.packb(fields, use_bin_type=True, strict_types=True)
+            return packed
+        except (TypeError, ValueError, OverflowError):
+            pass  # e.g. a lone surrogate or a huge integer: keep the object, exactly
+    return fields
+
+
+def _event(entry: _Entry) -> CachedEvent:
+    stored = entry[_FIELDS]
+    fields = (
+        msgpack.unpackb(stored, raw=False, strict_map_key=False)
+        if isinstance(stored, bytes)
+        else stored
+    )
+    return CachedEvent(fields, entry[_SERVED], entry[_TIME], entry[_SIZE])
 
 
 def estimate_size(value: Any, _depth: int = 0) -> int:
@@ -79,7 +114,7 @@ class EventCache:
         self.ttl_seconds = float(ttl_seconds)
         # OrderedDict, not dict: popping the oldest of a plain dict rescans the deleted slots
         # at its front, which makes a full cache's put O(n) instead of O(1).
-        self._entries: OrderedDict[str, CachedEvent] = OrderedDict()
+        self._entries: OrderedDict[str, _Entry] = OrderedDict()
         self._bytes = 0
         self.evictions = 0  # pushed out by the count or byte bound
         self.expiries = 0  # dropped for age
@@ -114,12 +149,12 @@ class EventCache:
         )
         old = self._entries.pop(event_id, None)
         if old is not None:
-            self._bytes -= old.size
+            self._bytes -= old[_SIZE]
         if charge > self.max_bytes:
             self.oversize += 1
             return False
         self._expire_front(now)
-        self._entries[event_id] = CachedEvent(fields, served, now, charge)
+        self._entries[event_id] = (_pack(fields), served, now, charge)
         self._bytes += charge
         while len(self._entries) > self.max_entries or self._bytes > self.max_bytes:
             self._drop_oldest()
@@ -138,18 +173,18 @@ class EventCache:
             self.misses += 1
             return None
         self.hits += 1
-        return entry
+        return _event(entry)
 
     def pop(self, event_id: str, now: float | None = None) -> CachedEvent | None:
         """Remove and return the entry; with ``now``, an expired entry is dropped as a miss."""
         entry = self._entries.pop(event_id, None)
         if entry is None:
             return None
-        self._bytes -= entry.size
+        self._bytes -= entry[_SIZE]
         if now is not None and self._expired(entry, now):
             self.expiries += 1
             return None
-        return entry
+        return _event(entry)
 
     def sweep(self, now: float) -> int:
         """Drop every expired entry; returns how many went."""
@@ -182,16 +217,16 @@ class EventCache:
 
     # -- internals -------------------------------------------------------------------------
 
-    def _expired(self, entry: CachedEvent, now: float) -> bool:
-        return now - entry.time >= self.ttl_seconds
+    def _expired(self, entry: _Entry, now: float) -> bool:
+        return now - entry[_TIME] >= self.ttl_seconds
 
-    def _remove(self, key: str, entry: CachedEvent) -> None:
+    def _remove(self, key: str, entry: _Entry) -> None:
         del self._entries[key]
-        self._bytes -= entry.size
+        self._bytes -= entry[_SIZE]
 
     def _drop_oldest(self) -> None:
         _, entry = self._entries.popitem(last=False)
-        self._bytes -= entry.size
+        self._bytes -= entry[_SIZE]
 
     def _expire_front(self, now: float) -> None:
         # Amortised O(1): each entry is dropped at most once, and the scan stops at the first

@@ -1,40 +1,40 @@
 """The HTTP service: ``create_app(settings) -> web.Application``.
 
 Handlers translate between HTTP and `ModelRegistry`/`Model` calls and hold no learning logic.
-One middleware maps every `ThresherError` (and aiohttp's own HTTP errors) to RFC 9457 problem
-details, counts responses and latency per route, and caps requests in flight.
+The middleware in `http_edge` maps every `ThresherError` (and aiohttp's own HTTP errors) to
+RFC 9457 problem details, counts responses and latency per route, and caps requests in flight;
+`http_io` reads bodies and writes answers.
 """
 
 from __future__ import annotations
 
 import asyncio
 import contextlib
+import gc
 import json
 import logging
 import math
 import time
-from collections.abc import AsyncIterator, Awaitable, Callable
+from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
-import msgpack
 from aiohttp import web
 from prometheus_client import CONTENT_TYPE_LATEST, CollectorRegistry, generate_latest
 
 from . import __version__
-from .auth import OPEN, Principal, RateLimiter, TokenStore
+from .auth import Principal, RateLimiter, TokenStore
 from .errors import (
-    BadRequest,
     Forbidden,
     InvalidInput,
     NotFound,
     PayloadTooLarge,
     RateLimited,
     ThresherError,
-    Unauthorized,
     Unavailable,
-    UnsupportedMedia,
 )
+from .http_edge import EDGE, PRINCIPAL, Edge, edge, principal
+from .http_io import answer, read_body, require_object
 from .lifecycle import ModelRegistry
 from .metrics import HttpMetrics, build_registry
 from .openapi import openapi_document
@@ -48,157 +48,8 @@ TOKENS = web.AppKey("tokens", TokenStore)
 LIMITER = web.AppKey("limiter", RateLimiter)
 PROM = web.AppKey("prometheus", CollectorRegistry)
 HTTP_METRICS = web.AppKey("http_metrics", HttpMetrics)
-INFLIGHT = web.AppKey("inflight", list)
-PRINCIPAL = web.RequestKey("principal", Principal)
 PAGE_DIR = Path(__file__).with_name("page")
-MSGPACK = "application/msgpack"
-PROBLEM = "application/problem+json"
-Handler = Callable[[web.Request], Awaitable[web.StreamResponse]]
-
-
-# -- encoding ------------------------------------------------------------------------------
-
-
-def _wants_msgpack(request: web.Request) -> bool:
-    accept = request.headers.get("Accept", "")
-    return MSGPACK in accept and "application/json" not in accept.split(MSGPACK)[0]
-
-
-def answer(request: web.Request, body: Any, *, status: int = 200) -> web.Response:
-    """JSON, or msgpack when the client's Accept asks for it."""
-    if _wants_msgpack(request):
-        return web.Response(
-            body=msgpack.packb(body, use_bin_type=True), status=status, content_type=MSGPACK
-        )
-    return web.Response(
-        text=json.dumps(body, separators=(",", ":"), allow_nan=False),
-        status=status,
-        content_type="application/json",
-    )
-
-
-def problem(error: ThresherError) -> web.Response:
-    response = web.Response(
-        text=json.dumps(error.to_problem()), status=error.status, content_type=PROBLEM
-    )
-    retry = getattr(error, "retry_after", None)
-    if retry is not None:
-        response.headers["Retry-After"] = str(max(1, math.ceil(retry)))
-    www = error.extra.get("www_authenticate") if isinstance(error, Unauthorized) else None
-    if isinstance(error, Unauthorized):
-        response.headers["WWW-Authenticate"] = www or 'Bearer realm="thresher"'
-    return response
-
-
-async def read_body(request: web.Request) -> Any:
-    """Parse a JSON or msgpack body, with errors that say what to send instead."""
-    limit = request.app[SETTINGS].max_body_bytes
-    if request.content_length is not None and request.content_length > limit:
-        raise PayloadTooLarge(f"body of {request.content_length} bytes is over {limit} bytes")
-    ctype = request.content_type
-    if ctype not in ("application/json", MSGPACK):
-        raise UnsupportedMedia(
-            f"content type {ctype!r} is not read here; send application/json or {MSGPACK}"
-        )
-    try:
-        raw = await request.read()
-    except web.HTTPRequestEntityTooLarge:
-        raise PayloadTooLarge(f"body is over the limit of {limit} bytes") from None
-    if not raw:
-        raise BadRequest("the request body is empty; send a JSON object")
-    try:
-        if ctype == MSGPACK:
-            return msgpack.unpackb(raw, raw=False, strict_map_key=True)
-        return json.loads(raw, parse_constant=_reject_constant)
-    except (ValueError, msgpack.UnpackException, UnicodeDecodeError) as exc:
-        kind = "msgpack" if ctype == MSGPACK else "JSON"
-        raise BadRequest(f"body is not valid {kind}: {exc}") from None
-
-
-def _reject_constant(name: str) -> Any:
-    raise ValueError(f"{name} is not valid JSON")
-
-
-def _object(body: Any, *keys: str) -> dict[str, Any]:
-    if not isinstance(body, dict):
-        raise InvalidInput("the body must be a JSON object", path="")
-    for key in body:
-        if key not in keys:
-            raise InvalidInput(f"unknown key {key!r}; expected {', '.join(keys)}", path=key)
-    return body
-
-
-# -- middleware ----------------------------------------------------------------------------
-
-
-@web.middleware
-async def edge(request: web.Request, handler: Handler) -> web.StreamResponse:
-    """Problem details, request metrics, in-flight cap, authentication."""
-    app = request.app
-    route = request.match_info.route.resource
-    template = route.canonical if route is not None else "unmatched"
-    started = time.perf_counter()
-    inflight = app[INFLIGHT]
-    status = 500
-    try:
-        if inflight[0] >= app[SETTINGS].max_inflight and template.startswith("/api/"):
-            raise Unavailable("too many requests in progress; retry shortly", retry_after=1.0)
-        inflight[0] += 1
-        try:
-            request[PRINCIPAL] = _authenticate(request, template)
-            response = await handler(request)
-        finally:
-            inflight[0] -= 1
-        status = response.status
-        return response
-    except ThresherError as error:
-        status = error.status
-        return problem(error)
-    except web.HTTPException as exc:
-        status = exc.status
-        if exc.status == 404:
-            return problem(NotFound(f"no route {request.method} {request.path}"))
-        if exc.status == 405:
-            error = ThresherError(f"{request.method} is not allowed on {request.path}")
-            error.status, error.slug, error.title = 405, "method-not-allowed", "Method not allowed"
-            response = problem(error)
-            allowed = exc.headers.get("Allow")
-            if allowed:
-                response.headers["Allow"] = allowed
-            return response
-        if exc.status == 413:
-            status = 413
-            return problem(PayloadTooLarge("request body is over the size limit"))
-        raise
-    except (asyncio.CancelledError, ConnectionResetError):
-        status = 499
-        raise
-    except Exception:
-        logger.exception("unhandled error in %s %s", request.method, request.path)
-        status = 500
-        error = ThresherError("internal error; the server log has the details")
-        error.status, error.slug, error.title = 500, "internal", "Internal error"
-        return problem(error)
-    finally:
-        metrics = app[HTTP_METRICS]
-        metrics.duration.labels(template, request.method).observe(time.perf_counter() - started)
-        metrics.responses.labels(template, request.method, str(status)).inc()
-
-
-def _authenticate(request: web.Request, template: str) -> Principal:
-    if not template.startswith("/api/") or template == "/api/openapi.json":
-        return OPEN
-    tokens = request.app[TOKENS]
-    who = OPEN if tokens is None else tokens.authenticate(request.headers.get("Authorization"))
-    if not request.app[MODELS].ready:
-        raise Unavailable("recovering: loading snapshots and replaying label logs", retry_after=1.0)
-    return who
-
-
-def principal(request: web.Request, role: str, model: str | None = None) -> Principal:
-    who: Principal = request[PRINCIPAL]
-    who.require(role, model)
-    return who
+__all__ = ["EDGE", "PRINCIPAL", "create_app", "edge"]
 
 
 # -- handlers ------------------------------------------------------------------------------
@@ -206,7 +57,7 @@ def principal(request: web.Request, role: str, model: str | None = None) -> Prin
 
 async def create_model(request: web.Request) -> web.Response:
     principal(request, "admin")
-    body = await read_body(request)
+    body = await read_body(request, request.app[SETTINGS].max_body_bytes)
     name = body.get("name") if isinstance(body, dict) else None
     principal(request, "admin", name if isinstance(name, str) else None)
     model = await request.app[MODELS].create(body)
@@ -246,9 +97,9 @@ async def delete_model(request: web.Request) -> web.Response:
 
 async def score(request: web.Request) -> web.Response:
     model = _model(request, "score")
-    body = _object(await read_body(request), "events", "explain")
-    events = body.get("events")
     settings = request.app[SETTINGS]
+    body = require_object(await read_body(request, settings.max_body_bytes), "events", "explain")
+    events = body.get("events")
     if not isinstance(events, list) or not events:
         raise InvalidInput("events must be a non-empty list of events", path="events")
     if len(events) > settings.max_events:
@@ -269,9 +120,11 @@ async def score(request: web.Request) -> web.Response:
 async def post_labels(request: web.Request) -> web.Response:
     model = _model(request, "label")
     who: Principal = request[PRINCIPAL]
-    body = _object(await read_body(request), "labels", "source", "wait")
-    labels = body.get("labels")
     settings = request.app[SETTINGS]
+    body = require_object(
+        await read_body(request, settings.max_body_bytes), "labels", "source", "wait"
+    )
+    labels = body.get("labels")
     if not isinstance(labels, list) or not labels:
         raise InvalidInput("labels must be a non-empty list of labels", path="labels")
     if len(labels) > settings.max_labels:
@@ -367,7 +220,11 @@ async def restore_snapshot(request: web.Request) -> web.Response:
 
 async def rebuild(request: web.Request) -> web.Response:
     model = _model(request, "admin")
-    body = _object(await read_body(request), "exclude_sources", "from_snapshot")
+    body = require_object(
+        await read_body(request, request.app[SETTINGS].max_body_bytes),
+        "exclude_sources",
+        "from_snapshot",
+    )
     sources = body.get("exclude_sources", [])
     if not isinstance(sources, list) or not all(isinstance(s, str) for s in sources):
         raise InvalidInput("exclude_sources must be a list of source names", path="exclude_sources")
@@ -442,6 +299,7 @@ async def page(request: web.Request) -> web.StreamResponse:
 # -- background work -----------------------------------------------------------------------
 
 BACKGROUND = web.AppKey("background", list)
+FREEZE_GC = web.AppKey("freeze_gc", bool)
 STOPPING = web.AppKey("stopping", asyncio.Event)
 
 
@@ -481,6 +339,11 @@ async def lifecycle_ctx(app: web.Application) -> AsyncIterator[None]:
         except Exception:
             logger.exception("could not open the models in %s", app[SETTINGS].data_dir)
             raise
+        if app[FREEZE_GC]:
+            # What start-up and recovery built lives as long as the process: moved out of the
+            # collector's sight, it no longer lengthens every full collection while serving.
+            gc.collect()
+            gc.freeze()
         if interval:
             app[BACKGROUND].append(asyncio.ensure_future(_snapshot_timer(registry, interval)))
 
@@ -497,8 +360,14 @@ async def lifecycle_ctx(app: web.Application) -> AsyncIterator[None]:
         await registry.close(snapshot=True)
 
 
-def create_app(settings: Settings, *, registry: ModelRegistry | None = None) -> web.Application:
-    """Build the application; nothing starts until it is run."""
+def create_app(
+    settings: Settings, *, registry: ModelRegistry | None = None, freeze_gc: bool = False
+) -> web.Application:
+    """Build the application; nothing starts until it is run.
+
+    ``freeze_gc`` (for a process that serves only this app, as ``thresher serve``): after
+    recovery, move every object alive to the collector's permanent generation (`gc.freeze`).
+    """
     if not settings.is_loopback() and settings.tokens_file is None and not settings.insecure:
         raise Forbidden(
             f"refusing to listen on {settings.host} without --tokens-file; create tokens with "
@@ -506,12 +375,18 @@ def create_app(settings: Settings, *, registry: ModelRegistry | None = None) -> 
         )
     app = web.Application(middlewares=[edge], client_max_size=settings.max_body_bytes)
     app[SETTINGS] = settings
+    app[FREEZE_GC] = freeze_gc
     models = registry or ModelRegistry(settings)
     app[MODELS] = models
     app[TOKENS] = TokenStore.load(settings.tokens_file) if settings.tokens_file else None  # type: ignore[assignment]
     app[LIMITER] = RateLimiter()
     app[PROM], app[HTTP_METRICS] = build_registry(models)
-    app[INFLIGHT] = [0]
+    app[EDGE] = Edge(
+        models=models,
+        tokens=app[TOKENS],
+        metrics=app[HTTP_METRICS],
+        max_inflight=settings.max_inflight,
+    )
     app[BACKGROUND] = []
     r = app.router
     r.add_post("/api/models", create_model)

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterator
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 from prometheus_client import CollectorRegistry, Counter, Histogram
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
@@ -57,6 +57,21 @@ class HttpMetrics:
             ["route", "method", "status"],
             registry=registry,
         )
+        # labels() hashes and locks on every call; the children of a route are cached here.
+        self._children: dict[tuple[str, str], tuple[Any, dict[int, Any]]] = {}
+
+    def observe(self, route: str, method: str, status: int, seconds: float) -> None:
+        """Count one response of ``route`` and observe how long it took."""
+        children = self._children.get((route, method))
+        if children is None:
+            children = (self.duration.labels(route, method), {})
+            self._children[(route, method)] = children
+        duration, by_status = children
+        duration.observe(seconds)
+        counter = by_status.get(status)
+        if counter is None:
+            counter = by_status[status] = self.responses.labels(route, method, str(status))
+        counter.inc()
 
 
 class ModelCollector(Collector):

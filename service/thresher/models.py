@@ -228,16 +228,17 @@ class Model(Labelling):
         classes = self.config.classes
         multi = len(classes) > 2
         results: list[dict[str, Any]] = []
-        for i, event_id in enumerate(ids):
-            label = int(labels[i])
-            row = margins[i]
+        # Plain lists: indexing numpy arrays per element costs more than converting them once.
+        for i, (event_id, label, row) in enumerate(
+            zip(ids, labels.tolist(), margins.tolist(), strict=True)
+        ):
             result: dict[str, Any] = {
                 "id": event_id,
                 "label": classes[label],
-                "margin": float(row[label] if multi else row[0]),
+                "margin": row[label] if multi else row[0],
             }
             if multi:
-                result["margins"] = {c: float(row[j]) for j, c in enumerate(classes)}
+                result["margins"] = dict(zip(classes, row, strict=True))
             if explain > 0:
                 result["explain"] = self.explain(all_fields[i], explain, f"events[{i}].fields")
             if event_id is not None:
@@ -282,20 +283,20 @@ class Model(Labelling):
         all_fields: list[Mapping[str, Any]] = []
         for i, event in enumerate(events):
             where = f"{path}[{i}]"
-            if not isinstance(event, Mapping):
+            if type(event) is not dict and not isinstance(event, Mapping):
                 raise InvalidEvent("each event must be an object with 'fields'", path=where)
-            extra = set(event) - {"id", "fields"}
-            if extra:
-                raise InvalidEvent(
-                    f"unknown key {sorted(extra)[0]!r}; an event has 'id' and 'fields'",
-                    path=where,
-                )
+            for key in event:
+                if key != "id" and key != "fields":
+                    extra = sorted((k for k in event if k not in ("id", "fields")), key=str)
+                    raise InvalidEvent(
+                        f"unknown key {extra[0]!r}; an event has 'id' and 'fields'", path=where
+                    )
             ids.append(_event_id(event.get("id"), f"{where}.id"))
             all_fields.append(self._fields(event.get("fields"), f"{where}.fields"))
         return ids, all_fields
 
     def _fields(self, fields: Any, path: str) -> Mapping[str, Any]:
-        if not isinstance(fields, Mapping):
+        if type(fields) is not dict and not isinstance(fields, Mapping):
             raise InvalidEvent("'fields' must be an object of field name to value", path=path)
         if len(fields) > self.max_fields:
             raise InvalidEvent(

@@ -67,6 +67,12 @@ class Settings:
         0, "Redis mode: acknowledge a label only after this many Redis replicas confirm it"
     )
     log_level: str = _opt("info", "logging level", choices=("debug", "info", "warning", "error"))
+    loop: str = _opt(
+        "auto",
+        "event loop: 'uvloop' (libuv, faster sockets), 'asyncio' (the standard library's), or "
+        "'auto' (uvloop when installed)",
+        choices=("auto", "uvloop", "asyncio"),
+    )
 
     @classmethod
     def from_mapping(cls, values: Mapping[str, Any]) -> Settings:
