@@ -16,14 +16,14 @@ import json
 import logging
 from collections import deque
 from collections.abc import Mapping, Sequence
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, NamedTuple
 
 import numpy as np
 
 from . import records
 from .batchlearn import learn_batch
 from .errors import InvalidEvent
-from .features import Featurizer, SparseRow
+from .features import Batch, Featurizer, SparseRow
 from .learner import Learner
 from .learner_kernels import served_weights
 from .quality import Quality
@@ -34,6 +34,13 @@ if TYPE_CHECKING:
 drift_logger = logging.getLogger("thresher.drift")
 RECENT_MISTAKES = 50
 OUTCOMES_KEPT = 1 << 17  # applied offsets whose mistake flag a waiting label request can read
+
+
+class BatchRow(NamedTuple):
+    """Row ``i`` of a featurized batch, sliced out only when it is learned alone."""
+
+    batch: Batch
+    i: int
 
 
 class Applying:
@@ -62,6 +69,8 @@ class Applying:
         self.offset = offset + 1
         if row is None and self._rows:
             row = self._rows.pop(offset, None)
+        if isinstance(row, BatchRow):
+            row = row.batch.row(row.i)
         if record["source"] not in self.exclude_sources:
             self._learn(record, row)
         self._applied_through(offset, [record])
@@ -145,7 +154,7 @@ class Applying:
                 batch = self.featurizer.transform_batch(
                     [recs[k]["fields"] for k in missing], path="fields"
                 )
-                rows.update((k, batch.row(i)) for i, k in enumerate(missing))
+                rows.update((k, BatchRow(batch, i)) for i, k in enumerate(missing))
             except InvalidEvent:
                 for k in missing:
                     try:
@@ -153,13 +162,8 @@ class Applying:
                     except InvalidEvent:
                         rows[k] = None  # skipped, as `apply` skips it
         kept = [(k, y) for k, y in zip(learned, ys, strict=True) if rows[k] is not None]
-        sizes = [rows[k].indices.size for k, _ in kept]
-        indptr = np.zeros(len(kept) + 1, dtype=np.int64)
-        np.cumsum(sizes, out=indptr[1:])
-        parts = [rows[k] for k, _ in kept]
-        indices = np.concatenate([r.indices for r in parts] or [np.zeros(0, np.int64)])
-        values = np.concatenate([r.values for r in parts] or [np.zeros(0, np.float32)])
-        return [k for k, _ in kept], [y for _, y in kept], (indptr, indices, values)
+        csr = _stack([rows[k] for k, _ in kept])
+        return [k for k, _ in kept], [y for _, y in kept], csr
 
     def _applied_through(self, first: int, recs: Sequence[dict[str, Any]]) -> None:
         """After records from ``first`` are applied: keep their outcomes, wake their waiters."""
@@ -278,3 +282,43 @@ class Applying:
             "time": record.get("time"),
             "top": top,
         }
+
+
+def _stack(rows: list[Any]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """One CSR batch (indptr, indices, values) of rows given as SparseRow or BatchRow."""
+    sizes: list[np.ndarray] = []
+    indices: list[np.ndarray] = [np.zeros(0, dtype=np.int64)]
+    values: list[np.ndarray] = [np.zeros(0, dtype=np.float32)]
+    k = 0
+    while k < len(rows):
+        row = rows[k]
+        if not isinstance(row, BatchRow):
+            sizes.append(np.array([row.indices.size], dtype=np.int64))
+            indices.append(row.indices)
+            values.append(row.values)
+            k += 1
+            continue
+        # Rows of one batch, consecutive here and rising there, are cut out together.
+        batch, start = row.batch, k
+        k += 1
+        while k < len(rows) and isinstance(rows[k], BatchRow) and rows[k].batch is batch:
+            if rows[k].i <= rows[k - 1].i:
+                break
+            k += 1
+        picked = np.fromiter((r.i for r in rows[start:k]), dtype=np.int64, count=k - start)
+        lengths = np.diff(batch.indptr)
+        if picked[-1] - picked[0] == k - start - 1:  # a contiguous range of the batch
+            a, b = int(batch.indptr[picked[0]]), int(batch.indptr[picked[-1] + 1])
+            indices.append(batch.indices[a:b])
+            values.append(batch.values[a:b])
+        else:
+            chosen = np.zeros(lengths.size, dtype=bool)
+            chosen[picked] = True
+            mask = np.repeat(chosen, lengths)
+            indices.append(batch.indices[mask])
+            values.append(batch.values[mask])
+        sizes.append(lengths[picked])
+    indptr = np.zeros(len(rows) + 1, dtype=np.int64)
+    if sizes:
+        np.cumsum(np.concatenate(sizes), out=indptr[1:])
+    return indptr, np.concatenate(indices), np.concatenate(values)

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 from typing import Any, Protocol, runtime_checkable
 
 from . import records
-from .applying import Applying
+from .applying import Applying, BatchRow
 from .errors import Conflict, InvalidEvent, Unavailable
 from .eventcache import EventCache
 from .labellog import LabelLog
@@ -169,7 +169,7 @@ class Labelling(Applying):
             for i, record in built:
                 self.featurizer.transform(record["fields"], path=f"labels[{i}].fields")
             raise
-        return [batch.row(p) for p in range(len(built))]
+        return [BatchRow(batch, p) for p in range(len(built))]
 
     async def _recall(self, shared: SharedLog, labels: Sequence[Any]) -> None:
         """Fetch events scored on other replicas that these labels name by id alone."""

@@ -82,6 +82,8 @@ def _prf(tp: int, fp: int, fn: int) -> tuple[float | None, float | None, float |
 
 
 def _index(value: Any, n: int, path: str) -> int:
+    if type(value) is int and 0 <= value < n:  # the common case, without the ABC check
+        return value
     if isinstance(value, bool) or not isinstance(value, Integral) or not 0 <= value < n:
         raise InvalidInput(f"must be a class index in [0, {n})", path=path)
     return int(value)

@@ -42,6 +42,8 @@ def decode(data: bytes) -> dict[str, Any]:
 
 
 def _check(record: Any) -> None:
+    if type(record) is dict and _well_formed(record):
+        return
     if not isinstance(record, dict):
         raise CorruptRecord(f"label record must be a map, got {type(record).__name__}")
     missing = [key for key in REQUIRED if key not in record]
@@ -54,8 +56,27 @@ def _check(record: Any) -> None:
         if not isinstance(record[key], str):
             raise CorruptRecord(f"label record {key} must be a string")
     fields = record["fields"]
-    if not isinstance(fields, dict) or not all(isinstance(k, str) for k in fields):
+    if not isinstance(fields, dict) or not all(map(str.__instancecheck__, fields)):
         raise CorruptRecord("label record fields must be a map with string keys")
     stamp = record["time"]
     if isinstance(stamp, bool) or not isinstance(stamp, int | float) or not math.isfinite(stamp):
         raise CorruptRecord("label record time must be a finite number of seconds")
+
+
+def _well_formed(record: dict[str, Any]) -> bool:
+    """The plain shape every record this service writes has, checked in one pass."""
+    try:
+        event_id, label, fields = record["id"], record["label"], record["fields"]
+        source, served, stamp = record["source"], record["served"], record["time"]
+    except KeyError:
+        return False
+    return (
+        (event_id is None or type(event_id) is str)
+        and type(label) is str
+        and type(source) is str
+        and (served is None or type(served) is str)
+        and type(stamp) is float
+        and math.isfinite(stamp)
+        and type(fields) is dict
+        and all(map(str.__instancecheck__, fields))
+    )

@@ -1,0 +1,97 @@
+"""Label requests: featurized as one batch, applied as one batch, errors where they were."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import pytest
+
+from thresher.demo_traffic import DEMO_MODEL, ListingTraffic
+from thresher.errors import Conflict, InvalidEvent
+from thresher.eventcache import EventCache
+from thresher.labellog import FileLog
+from thresher.models import Model, ModelConfig
+
+
+class _NoLog:
+    """The reference model applies records directly; nothing is appended."""
+
+    def head(self) -> int:
+        return 0
+
+
+def _config(rule: str = "classic") -> ModelConfig:
+    return ModelConfig.from_json(dict(DEMO_MODEL, rule=rule), created=0.0)
+
+
+def _labels(n: int, seed: int) -> list[dict[str, Any]]:
+    return [
+        {"id": event_id, "label": label, "fields": fields}
+        for event_id, fields, label in ListingTraffic(seed=seed, shift_at=n // 2).batch(n)
+    ]
+
+
+async def _model(tmp_path: Path, rule: str = "classic") -> Model:
+    log = await FileLog.open(tmp_path / "log", flush="interval")
+    return Model(_config(rule), log, cache=EventCache())
+
+
+@pytest.mark.parametrize(
+    ("bad", "path"),
+    [
+        # A field the spec refuses in an earlier label wins over a later label's fault.
+        ({3: {"price": "abc"}, 5: {"label": "spam"}}, "labels[3].fields.price"),
+        ({1: {"label": "spam"}, 3: {"price": "abc"}}, "labels[1].label"),
+        ({2: {"price": [1]}, 4: {"id": "a-0"}}, "labels[2].fields.price"),
+        ({4: {"price": "abc"}}, "labels[4].fields.price"),
+        ({4: {"id": "a-0"}}, "labels[4].label"),
+    ],
+)
+async def test_errors_name_the_label_in_the_request(
+    tmp_path: Path, bad: dict[int, dict[str, Any]], path: str
+) -> None:
+    model = await _model(tmp_path)
+    labels = [{"id": f"a-{i}", "label": "fine", "fields": {"title": "oak table", "price": 80}}
+              for i in range(6)]  # fmt: skip
+    labels[0]["label"] = "fraud"  # so an id repeated with "fine" conflicts
+    for i, change in bad.items():
+        for key, value in change.items():
+            if key in ("label", "id"):
+                labels[i][key] = value
+            else:
+                labels[i]["fields"][key] = value
+    with pytest.raises((InvalidEvent, Conflict)) as caught:
+        await model.label(labels, source="queue", now=1.0)
+    assert caught.value.path == path
+    assert model.log.head() == 0 and model.offset == 0 and not model.pending
+    await model.log.close()
+
+
+@pytest.mark.parametrize("rule", ["classic", "averaged", "passive_aggressive"])
+async def test_label_requests_learn_as_records_applied_one_by_one(
+    tmp_path: Path, rule: str
+) -> None:
+    model = await _model(tmp_path, rule)
+    reference = Model(_config(rule), _NoLog(), cache=EventCache())  # type: ignore[arg-type]
+    labels = _labels(4000, seed=6)
+    labels[7]["id"] = None  # labels without an id are learned too
+    sizes = [100, 1, 350, 49, 500, 100, 2900]
+    acks, start, mistakes = [], 0, 0
+    for size in sizes:
+        ack = await model.label(labels[start : start + size], source="queue", now=2.0 + start)
+        acks.append(ack)
+        for label in labels[start : start + size]:
+            record = {**label, "source": "queue", "served": None, "time": 2.0 + start}
+            reference.apply(reference.offset, record)
+            mistakes += bool(record.get("_mistake"))
+        start += size
+    assert [a.applied for a in acks] == sizes and sum(a.mistakes or 0 for a in acks) == mistakes
+    assert model.offset == reference.offset == model.log.head() == len(labels)
+    assert model.digest() == reference.digest()
+    assert list(model.recent_mistakes) == list(reference.recent_mistakes)
+    assert len(model.recent_mistakes) == model.recent_mistakes.maxlen
+    # A retry of the whole request counts every label as a duplicate and learns nothing.
+    again = await model.label(labels[200:300], source="queue", now=9.0)
+    assert (again.applied, again.duplicates) == (0, 100) and model.digest() == reference.digest()
+    await model.log.close()
