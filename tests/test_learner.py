@@ -446,6 +446,21 @@ def test_nonzero_counts_used_columns_across_slices(n_classes: int, bits: int, ru
     assert learner.nonzero() == len(used)
 
 
+def test_from_state_adopts_arrays_only_when_asked_and_able() -> None:
+    learner = Learner(3, 8, rule="averaged")
+    learner.update(np.array([1, 200], np.int64), np.array([1.0, -2.0], np.float32), 2)
+    state = {k: (v.copy() if isinstance(v, np.ndarray) else v)
+             for k, v in learner.state().items()}  # fmt: skip
+    frozen = state["accum"].copy()
+    frozen.flags.writeable = False
+    adopted = Learner.from_state({**state, "accum": frozen}, copy=False)
+    assert adopted.weights_ is state["weights"]  # taken over: no second copy
+    assert adopted.accum_ is not frozen and adopted.accum_.flags.writeable
+    copied = Learner.from_state(state)
+    assert not np.shares_memory(copied.weights_, state["weights"])
+    assert adopted.digest() == copied.digest() == learner.digest()
+
+
 def test_counters_nonzero_and_memory_layout() -> None:
     learner = Learner(2, 10, rule="averaged")
     assert learner.weights_.dtype == np.float32 and learner.weights_.shape == (1, 1024)

@@ -368,8 +368,12 @@ class Learner:
         return state
 
     @classmethod
-    def from_state(cls, state: dict[str, Any]) -> Learner:
-        """Rebuild a learner from :meth:`state` exactly (arrays are copied)."""
+    def from_state(cls, state: dict[str, Any], *, copy: bool = True) -> Learner:
+        """Rebuild a learner from :meth:`state` exactly; arrays are copied.
+
+        With ``copy=False`` arrays that are already C-ordered and writable are adopted as they
+        are (a freshly decoded snapshot's), so loading does not hold the weights twice.
+        """
         if not isinstance(state, dict) or state.get("format") != STATE_FORMAT:
             raise InvalidConfig(f"learner state format must be {STATE_FORMAT}", path="format")
         try:
@@ -389,7 +393,9 @@ class Learner:
             arr = state.get(key)
             if not isinstance(arr, np.ndarray) or arr.dtype != np.float32 or arr.shape != shape:
                 raise InvalidConfig(f"must be a float32 array of shape {shape}", path=key)
-            setattr(learner, f"{key}_", np.array(arr, dtype=np.float32, order="C"))
+            if copy or not (arr.flags.c_contiguous and arr.flags.writeable):
+                arr = np.array(arr, dtype=np.float32, order="C")
+            setattr(learner, f"{key}_", arr)
         return learner
 
     def digest(self) -> str:

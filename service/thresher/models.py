@@ -369,10 +369,10 @@ class Model(Labelling):
         }
 
     def load_state(self, state: Mapping[str, Any]) -> None:
-        """Replace the learned state with a snapshot's."""
+        """Replace the learned state with a snapshot's; its arrays are taken over, not copied."""
         if state.get("format") != STATE_FORMAT:
             raise InvalidConfig(f"snapshot format {state.get('format')!r} is not supported")
-        self.learner = Learner.from_state(state["learner"])
+        self.learner = Learner.from_state(state["learner"], copy=False)
         self._weights_digest = self._nonzero = None
         self.quality = Quality.from_state(state["quality"])
         self.applied = {str(k): int(v) for k, v in state["applied"].items()}
