@@ -94,7 +94,7 @@ def snapshot_rows(mode: Mode) -> list[dict[str, Any]]:
     for label, rule, dense in cases:
         with tempfile.TemporaryDirectory(prefix="bench-snap-") as tmp:
             writes, loads, size = asyncio.run(_snapshots(mode, Path(tmp), rule, dense))
-        note = f"file {size / 2**20:.1f} MiB; write includes the state copy, fsync and rename"
+        note = f"file {size / 2**20:.1f} MiB; write includes the state capture, fsync and rename"
         rows.append(
             row(
                 f"7a. snapshot write, bits=24 {label}",
