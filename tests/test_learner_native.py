@@ -207,3 +207,32 @@ def test_a_malformed_batch_changes_nothing() -> None:
     with pytest.raises(InvalidInput):
         model.update_batch(*batch, np.array([0, 1]))
     assert learned(model) == before
+
+
+@pytest.mark.parametrize("rule", ["classic", "margin", "averaged", "passive_aggressive"])
+@pytest.mark.parametrize("n_classes", [2, 3])
+def test_weights_behind_each_prediction_are_bit_identical(rule: str, n_classes: int) -> None:
+    native, reference = trained(rule, n_classes, 6), trained(rule, n_classes, 6)
+    reference.native = False
+    rng = np.random.default_rng(8)
+    for rows in (0, 1, 50, 200):
+        batch = random_batch(rng, rows)
+        ys = rng.integers(0, n_classes, rows)
+        a, before_a = native.update_batch_explained(*batch, ys)
+        b, before_b = reference.update_batch_explained(*batch, ys)
+        for x, y in zip(a, b, strict=True):
+            assert x.dtype == y.dtype and x.tobytes() == y.tobytes()
+        assert before_a.shape == before_b.shape == (model_rows(n_classes), batch[1].size)
+        assert before_a.tobytes() == before_b.tobytes()
+        assert learned(native) == learned(reference)
+    # and the explained call learns exactly what update_batch learns
+    plain = trained(rule, n_classes, 6)
+    rng = np.random.default_rng(8)
+    for rows in (0, 1, 50, 200):
+        batch = random_batch(rng, rows)
+        plain.update_batch(*batch, rng.integers(0, n_classes, rows))
+    assert learned(plain) == learned(native)
+
+
+def model_rows(n_classes: int) -> int:
+    return 1 if n_classes == 2 else n_classes

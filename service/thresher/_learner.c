@@ -194,17 +194,19 @@ static void apply(Batch *b, Py_ssize_t i, Py_ssize_t row, double step, double c)
     }
 }
 
-/* learn(weights, accum, rows, rule, margin, aggressiveness, seen, indptr, indices, values, ys)
- *   -> (predicted int64 bytes, margins float64 bytes, updated bool bytes, updates), or None.
- * Learner.update_batch row by row: predict with the served weights, decide with the training
- * ones, update in place. Row i is learned with c = seen + i. */
+/* learn(weights, accum, rows, rule, margin, aggressiveness, seen, indptr, indices, values, ys,
+ *       before=False)
+ *   -> (predicted int64 bytes, margins float64 bytes, updated bool bytes, updates[, before]),
+ *   or None. Learner.update_batch row by row: predict with the served weights, decide with the
+ * training ones, update in place. Row i is learned with c = seen + i. With before, also the
+ * served weights float64 (rows, nnz) each row was predicted with, before its own update. */
 static PyObject *learn(PyObject *self, PyObject *args) {
-    PyObject *w, *u, *ptr, *idx, *val, *ys, *out = NULL;
+    PyObject *w, *u, *ptr, *idx, *val, *ys, *out = NULL, *kept = NULL;
     Py_ssize_t rows, i;
-    int rule;
+    int rule, want_before = 0;
     double tau, cap, seen;
-    if (!PyArg_ParseTuple(args, "OOnidddOOOO:learn", &w, &u, &rows, &rule, &tau, &cap, &seen,
-                          &ptr, &idx, &val, &ys))
+    if (!PyArg_ParseTuple(args, "OOnidddOOOO|p:learn", &w, &u, &rows, &rule, &tau, &cap, &seen,
+                          &ptr, &idx, &val, &ys, &want_before))
         return NULL;
     Batch b;
     memset(&b, 0, sizeof b);
@@ -217,7 +219,11 @@ static PyObject *learn(PyObject *self, PyObject *args) {
     PyObject *served = PyByteArray_FromStringAndSize(NULL, b.n * rows * 8);
     PyObject *updated = PyByteArray_FromStringAndSize(NULL, b.n);
     double *train = PyMem_Malloc((size_t)rows * sizeof(double));
-    if (predicted == NULL || served == NULL || updated == NULL || train == NULL) goto done;
+    if (want_before) kept = PyByteArray_FromStringAndSize(NULL, b.nnz * rows * 8);
+    if (predicted == NULL || served == NULL || updated == NULL || train == NULL ||
+        (want_before && kept == NULL))
+        goto done;
+    double *bp = want_before ? (double *)PyByteArray_AS_STRING(kept) : NULL;
     int64_t *pred = (int64_t *)PyByteArray_AS_STRING(predicted);
     double *sv = (double *)PyByteArray_AS_STRING(served);
     char *up = PyByteArray_AS_STRING(updated);
@@ -229,6 +235,19 @@ static PyObject *learn(PyObject *self, PyObject *args) {
         if (b.u.ok) row_margins(&b, i, b.u.view.buf, c > 1.0 ? c : 1.0, m);
         else memcpy(m, train, (size_t)rows * sizeof(double));
         pred[i] = label_of(m, rows);
+        if (bp != NULL) { /* served weights, as learner_kernels.served_weights gathers them */
+            const float *wf = b.w.view.buf, *uf = b.u.ok ? b.u.view.buf : NULL;
+            double cc = c > 1.0 ? c : 1.0;
+            Py_ssize_t r;
+            for (r = 0; r < rows; r++) {
+                for (k = lo; k < hi; k++) {
+                    int64_t j = r * b.dim + b.ip[k];
+                    double weight = (double)wf[j];
+                    if (uf) weight = weight - (double)uf[j] / cc;
+                    bp[r * b.nnz + k] = weight;
+                }
+            }
+        }
         double sq = 0.0;
         if (rule == PASSIVE_AGGRESSIVE) {
             for (k = lo; k < hi; k++) sq += value_at(&b, k) * value_at(&b, k);
@@ -263,12 +282,14 @@ static PyObject *learn(PyObject *self, PyObject *args) {
         up[i] = (char)fire;
         updates += fire;
     }
-    out = Py_BuildValue("OOOL", predicted, served, updated, updates);
+    if (want_before) out = Py_BuildValue("OOOLO", predicted, served, updated, updates, kept);
+    else out = Py_BuildValue("OOOL", predicted, served, updated, updates);
 done:
     PyMem_Free(train);
     Py_XDECREF(predicted);
     Py_XDECREF(served);
     Py_XDECREF(updated);
+    Py_XDECREF(kept);
     batch_release(&b);
     return out;
 }
@@ -279,7 +300,8 @@ static PyMethodDef methods[] = {
      "or None when the input needs the checked numpy path"},
     {"learn", learn, METH_VARARGS,
      "learn(weights, accum, rows, rule, margin, aggressiveness, seen, indptr, indices, values, "
-     "ys) -> (predicted, margins, updated, updates), or None for the numpy path"},
+     "ys, before=False) -> (predicted, margins, updated, updates[, before]), or None for the "
+     "numpy path"},
     {NULL, NULL, 0, NULL},
 };
 

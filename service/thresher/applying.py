@@ -5,8 +5,8 @@ log's next offsets into learning: featurize, predict then update (progressive va
 count quality, remember applied ids, flag and explain mistakes, wake waiting requests.
 :meth:`Applying.apply` takes one record; :meth:`Applying.apply_batch` takes a run of
 consecutive records, featurizes them as one CSR batch and learns them through
-:func:`~thresher.batchlearn.learn_batch`, with a bit-identical result: the same weights, the
-same counters, the same recent mistakes explained with the same weights.
+:meth:`~thresher.learner.Learner.update_batch_explained`, with a bit-identical result: the same
+weights, the same counters, the same recent mistakes explained with the same weights.
 """
 
 from __future__ import annotations
@@ -21,7 +21,6 @@ from typing import TYPE_CHECKING, Any, NamedTuple
 import numpy as np
 
 from . import records
-from .batchlearn import learn_batch
 from .errors import InvalidEvent
 from .features import Batch, Featurizer, SparseRow
 from .learner import Learner
@@ -105,7 +104,7 @@ class Applying:
         if learned:
             keep = self.recent_mistakes.maxlen or 0
             labels = np.asarray(ys, dtype=np.int64)
-            steps, befores = learn_batch(self.learner, indptr, indices, values, labels, keep=keep)
+            steps, befores = _learn(self.learner, indptr, indices, values, labels, keep)
             predicted, mistakes = steps.predicted.tolist(), steps.mistakes.tolist()
             for j, k in enumerate(learned):
                 self.offset = first + k + 1  # a drift alarm logs the offset it fired at
@@ -322,3 +321,20 @@ def _stack(rows: list[Any]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     if sizes:
         np.cumsum(np.concatenate(sizes), out=indptr[1:])
     return indptr, np.concatenate(indices), np.concatenate(values)
+
+
+def _learn(
+    learner: Learner,
+    indptr: np.ndarray,
+    indices: np.ndarray,
+    values: np.ndarray,
+    ys: np.ndarray,
+    keep: int,
+) -> tuple[Any, dict[int, np.ndarray]]:
+    """Learn a CSR batch in order; the served weights (rows, nnz) behind its last ``keep``
+    mistakes, by row number, as they were when each was predicted."""
+    if keep <= 0:
+        return learner.update_batch(indptr, indices, values, ys), {}
+    steps, before = learner.update_batch_explained(indptr, indices, values, ys)
+    wanted = np.flatnonzero(steps.mistakes)[-keep:].tolist()
+    return steps, {j: before[:, indptr[j] : indptr[j + 1]] for j in wanted}

@@ -224,15 +224,18 @@ class Learner:
             size = np.asarray(indices).size
             made = self._learn_native(np.array([0, size]), indices, values, np.array([int(y)]))
             if made is not None:
-                return Update(int(made[0][0]), bool(made[1][0]), made[2][0], bool(made[3][0]))
+                one = made[0]
+                return Update(int(one[0][0]), bool(one[1][0]), one[2][0], bool(one[3][0]))
         idx, x = check_row(indices, values, self.bits)
         return self._step(idx, x, int(y))
 
-    def _learn_native(self, indptr: Any, indices: Any, values: Any, ys: Any) -> BatchUpdate | None:
+    def _learn_native(
+        self, indptr: Any, indices: Any, values: Any, ys: Any, before: bool = False
+    ) -> tuple[BatchUpdate, np.ndarray | None] | None:
         """update_batch in the compiled kernel, or None when the input needs the numpy checks."""
         made = _learner.learn(self.weights_, self.accum_, self.rows, _RULE_CODES[self.rule],
                               self.margin, self.aggressiveness, float(self.seen), indptr,
-                              indices, values, ys)  # fmt: skip
+                              indices, values, ys, before)  # fmt: skip
         if made is None:
             return None
         predicted = np.frombuffer(made[0], np.int64)
@@ -240,7 +243,9 @@ class Learner:
         self.seen += predicted.size
         self.updates += made[3]
         mistakes = predicted != np.asarray(ys)
-        return BatchUpdate(predicted, mistakes, margins, np.frombuffer(made[2], np.bool_))
+        steps = BatchUpdate(predicted, mistakes, margins, np.frombuffer(made[2], np.bool_))
+        kept = np.frombuffer(made[4], np.float64).reshape(self.rows, -1) if before else None
+        return steps, kept
 
     def _step(self, idx: np.ndarray, x: np.ndarray, y: int) -> Update:
         """One checked row through the same kernels and tests as a chunk of one."""
@@ -277,7 +282,7 @@ class Learner:
         if _learner is not None and self.native:
             made = self._learn_native(indptr, indices, values, ys)
             if made is not None:
-                return made
+                return made[0]
         ptr, idx, x = check_csr(indptr, indices, values, self.bits)
         n = ptr.size - 1
         ys = check_labels(ys, n, self.n_classes)
@@ -328,6 +333,36 @@ class Learner:
                 self._chunk = min(_MAX_CHUNK, 2 * self._chunk)
             start += stop
         return BatchUpdate(predicted, predicted != ys, margins, updated)
+
+    def update_batch_explained(
+        self, indptr: Any, indices: Any, values: Any, ys: Any
+    ) -> tuple[BatchUpdate, np.ndarray]:
+        """:meth:`update_batch`, plus the weights behind each prediction.
+
+        Also returns ``before``, float64 (rows, nnz): for every nonzero of the batch, the served
+        weights (``w``, or the averaged ``w - u/c``) its row was predicted with, gathered before
+        that row's own update -- what explains a mistake. Row i's are ``before[:, indptr[i]:
+        indptr[i + 1]]``.
+        """
+        if _learner is not None and self.native:
+            made = self._learn_native(indptr, indices, values, ys, before=True)
+            if made is not None:
+                return made[0], made[1]  # type: ignore[return-value]
+        ptr, idx, x = check_csr(indptr, indices, values, self.bits)
+        n = ptr.size - 1
+        labels = check_labels(ys, n, self.n_classes)
+        before = np.zeros((self.rows, idx.size), dtype=np.float64)
+        steps = []
+        for i in range(n):  # the reference: row by row, gathering before each step
+            lo, hi = int(ptr[i]), int(ptr[i + 1])
+            before[:, lo:hi] = served_weights(
+                self.weights_, self.accum_, idx[lo:hi], float(self.seen)
+            )
+            steps.append(self._step(idx[lo:hi], x[lo:hi], int(labels[i])))
+        margins = np.array([s.margins for s in steps], np.float64).reshape(n, self.rows)
+        predicted = np.array([s.predicted for s in steps], np.int64)
+        updated = np.array([s.updated for s in steps], np.bool_)
+        return BatchUpdate(predicted, predicted != labels, margins, updated), before
 
     # -- state -----------------------------------------------------------------------------
 
