@@ -67,12 +67,10 @@ async def create_model(request: web.Request) -> web.Response:
 async def list_models(request: web.Request) -> web.Response:
     who = principal(request, "score")
     registry = request.app[MODELS]
-    items = [
-        registry.models[n].summary()
-        for n in registry.names()
-        if who.models is None or n in who.models
-    ]
-    return answer(request, {"models": items})
+    shown = [registry.models[n] for n in registry.names() if who.models is None or n in who.models]
+    for model in shown:
+        await model.refresh()  # hash and count the weights off the event loop
+    return answer(request, {"models": [model.summary() for model in shown]})
 
 
 def _model(request: web.Request, role: str) -> Any:
@@ -83,6 +81,7 @@ def _model(request: web.Request, role: str) -> Any:
 
 async def get_model(request: web.Request) -> web.Response:
     model = _model(request, "score")
+    await model.refresh()  # hash and count the weights off the event loop
     summary = model.summary()
     info = request.app[MODELS].last_snapshot.get(model.name)
     summary["snapshot"] = None if info is None else _snapshot_json(info)
@@ -257,6 +256,7 @@ async def events_stream(request: web.Request) -> web.StreamResponse:
                 model = registry.models.get(name)
                 if model is None:
                     continue
+                await model.refresh()
                 data = quality_report(model)
                 data["summary"] = model.summary()
                 info = registry.last_snapshot.get(name)
@@ -270,6 +270,11 @@ async def events_stream(request: web.Request) -> web.StreamResponse:
 
 
 async def metrics(request: web.Request) -> web.Response:
+    registry = request.app[MODELS]
+    for name in registry.names():
+        model = registry.models.get(name)
+        if model is not None:
+            await model.refresh(digest=False)  # the collector reads the cached slot count
     body = generate_latest(request.app[PROM])
     return web.Response(body=body, headers={"Content-Type": CONTENT_TYPE_LATEST})
 

@@ -159,7 +159,8 @@ class Learner:
         self.dim = 1 << self.bits
         self.weights_ = np.zeros((self.rows, self.dim), dtype=np.float32)
         self.accum_: np.ndarray | None = (
-            np.zeros_like(self.weights_) if rule == "averaged" else None
+            # np.zeros, not zeros_like: pages are only touched once written (lazy allocation)
+            np.zeros((self.rows, self.dim), dtype=np.float32) if rule == "averaged" else None
         )
         self.updates = 0
         self.seen = 0

@@ -122,7 +122,7 @@ class ModelCollector(Collector):
             fams.drift_stat.add_metric([name], _num(drift["statistic"]))
             fams.drift_threshold.add_metric([name], _num(drift["threshold"]))
             fams.drift_alarms.add_metric([name], drift["alarms"])
-            nonzero = int(model.learner.nonzero())
+            nonzero = int(model.nonzero())  # cached; /metrics refreshes it off the loop first
             slots = float(1 << model.config.bits)
             load = nonzero / slots
             fams.nonzero.add_metric([name], nonzero)

@@ -382,6 +382,33 @@ class Model(Labelling):
         self.duplicates = int(state.get("duplicates", 0))
         self.last_update = float(state.get("last_update", 0.0))
 
+    def fresh(self) -> Model:
+        """A model with this one's definition, log and event cache that has learned nothing."""
+        return Model(
+            self.config,
+            self.log,
+            cache=self.cache,
+            max_fields=self.max_fields,
+            apply_on_append=self.apply_on_append,
+        )
+
+    def adopt(self, other: Model) -> None:
+        """Take over another model's learned state and offset (a rebuild's result)."""
+        self.load_state(other._state())
+        self.recent_mistakes = other.recent_mistakes
+        self._wake_through(self.offset)
+
+    def skip_to(self, offset: int) -> None:
+        """Stand at ``offset`` without learning (past a control record); wake its waiters."""
+        self.offset = offset
+        self._wake_through(offset)
+
+    def _wake_through(self, offset: int) -> None:
+        for waiting in [o for o in self._waiters if o < offset]:
+            future = self._waiters.pop(waiting)
+            if not future.done():
+                future.set_result(None)
+
     def weights_digest(self) -> str:
         """The learner's digest, hashed again only after the weights can have changed."""
         learner = self.learner
@@ -400,6 +427,31 @@ class Model(Labelling):
         h.update(self.weights_digest().encode())
         h.update(self.quality.counters_digest().encode())
         return h.hexdigest()
+
+    async def refresh(self, *, digest: bool = True) -> None:
+        """Bring the cached :meth:`nonzero` (and weights digest) up to date off the event loop.
+
+        Both read every weight: at bits=24 that is tens of milliseconds that would stall scoring
+        if done on the loop after every change. Label application is held meanwhile (labels are
+        still appended and are applied after), so the weights hold still under the worker
+        thread; scoring goes on.
+        """
+        learner = self.learner
+        key = (id(learner), learner.seen, learner.updates)
+        stale_nonzero = self._nonzero is None or self._nonzero[0] != key
+        stale_digest = digest and (self._weights_digest is None or self._weights_digest[0] != key)
+        if not (stale_nonzero or stale_digest):
+            return
+        self.hold()
+        try:
+            learner = self.learner
+            key = (id(learner), learner.seen, learner.updates)
+            if stale_nonzero:
+                self._nonzero = (key, await asyncio.to_thread(learner.nonzero))
+            if stale_digest:
+                self._weights_digest = (key, await asyncio.to_thread(learner.digest))
+        finally:
+            self.resume()
 
     def nonzero(self) -> int:
         """The learner's used slots, counted again only after the weights can have changed."""
