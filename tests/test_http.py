@@ -448,3 +448,24 @@ def test_refuses_public_bind_without_tokens(tmp_path: Path) -> None:
     with pytest.raises(Forbidden, match="tokens-file"):
         create_app(settings)
     create_app(settings.replace(insecure=True))  # explicit opt-in is allowed
+
+
+async def test_a_label_whose_fields_the_log_cannot_store_is_refused_cleanly(api: Api) -> None:
+    # JSON allows integers of any size; msgpack, the label log's encoding, stops at 64 bits.
+    await _listing_model(api, features={"fields": {"ref": {"kind": "categorical"}}})
+    huge = {"ref": 2**70}
+    status, body, _ = await api.call(
+        "POST", "/api/models/listings/score", {"events": [{"id": "h1", "fields": huge}]}
+    )
+    assert status == 200  # scoring needs no storage: the integer is a categorical token
+    for label in ({"id": "h1", "label": "fine"}, {"label": "fine", "fields": huge}):
+        status, body, headers = await api.call(
+            "POST",
+            "/api/models/listings/labels",
+            {"labels": [{"label": "fine", "fields": {"ref": 7}}, label], "source": "r"},
+        )
+        assert status == 422, body
+        assert headers["Content-Type"].startswith("application/problem+json")
+        assert body["path"] == "labels[1].fields" and "64 bits" in body["detail"]
+    status, model, _ = await api.call("GET", "/api/models/listings")
+    assert model["labelled"] == 0 and model["head"] == 0  # nothing of the refused requests kept

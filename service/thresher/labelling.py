@@ -116,7 +116,14 @@ class Labelling(Applying):
                         duplicates += 1
                         continue
                     fresh[event_id] = y
-                payloads.append(records.encode(record))
+                try:
+                    payloads.append(records.encode(record))
+                except records.CorruptRecord:
+                    raise InvalidEvent(
+                        "the label's fields cannot be stored in the label log: integers must "
+                        "fit in 64 bits; send larger numbers as strings or floats",
+                        path=f"{where}.fields",
+                    ) from None
                 kept.append(len(built) - 1)
         except Exception:
             # Labels are checked in order, each featurized as it passes: an invalid field in
