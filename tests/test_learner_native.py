@@ -28,19 +28,27 @@ if learner_module._learner is None:
 BITS = 12
 
 
+def random_batch(
+    rng: np.random.Generator, rows: int, f64: bool = False, spread: float = 2.0
+) -> tuple[Any, ...]:
+    """A CSR batch of ``rows`` random rows (0-29 nonzeros), values scaled by 10**±spread."""
+    lengths = rng.integers(0, 30, rows)
+    indptr = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
+    indices = np.concatenate(
+        [np.sort(rng.choice(1 << BITS, k, replace=False)) for k in lengths] or [[]]
+    ).astype(np.int64)
+    values = (rng.normal(size=indices.size) * 10 ** rng.uniform(-spread, spread)).astype(
+        np.float64 if f64 else np.float32
+    )
+    return indptr, indices, values
+
+
 def trained(rule: str, n_classes: int, seed: int) -> Learner:
     """A learner taught a few hundred random rows, so weights (and u) are far from zero."""
     rng = np.random.default_rng(seed)
     margin = 0.5 if rule == "margin" else 0.0
     model = Learner(n_classes, BITS, rule=rule, margin=margin)
-    n = 300
-    lengths = rng.integers(1, 30, n)
-    indptr = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
-    indices = np.concatenate(
-        [np.sort(rng.choice(1 << BITS, k, replace=False)) for k in lengths]
-    ).astype(np.int64)
-    values = rng.normal(size=indices.size).astype(np.float32)
-    model.update_batch(indptr, indices, values, rng.integers(0, n_classes, n))
+    model.update_batch(*random_batch(rng, 300, spread=0.0), rng.integers(0, n_classes, 300))
     return model
 
 
@@ -69,15 +77,7 @@ def test_margins_are_bit_identical(
 ) -> None:
     model = trained(rule, n_classes, seed % 7)
     rng = np.random.default_rng(seed)
-    lengths = rng.integers(0, 40, rows)
-    indptr = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
-    indices = np.concatenate(
-        [np.sort(rng.choice(1 << BITS, k, replace=False)) for k in lengths] or [[]]
-    ).astype(np.int64)
-    values = (rng.normal(size=indices.size) * 10 ** rng.uniform(-3, 3)).astype(
-        np.float64 if f64 else np.float32
-    )
-    native, reference = both(model, indptr, indices, values)
+    native, reference = both(model, *random_batch(rng, rows, f64, spread=3.0))
     assert native == reference
 
 
@@ -128,18 +128,6 @@ def test_a_nan_margin_ranks_as_numpy_does() -> None:
         model.weights_[0, 8] = -np.inf
         native, reference = both(model, [0, 2], np.array([7, 8], np.int64), np.ones(2, np.float32))
         assert native == reference
-
-
-def random_batch(rng: np.random.Generator, rows: int, f64: bool = False) -> tuple[Any, ...]:
-    lengths = rng.integers(0, 30, rows)
-    indptr = np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
-    indices = np.concatenate(
-        [np.sort(rng.choice(1 << BITS, k, replace=False)) for k in lengths] or [[]]
-    ).astype(np.int64)
-    values = (rng.normal(size=indices.size) * 10 ** rng.uniform(-2, 2)).astype(
-        np.float64 if f64 else np.float32
-    )
-    return indptr, indices, values
 
 
 def learned(model: Learner) -> tuple[Any, ...]:
