@@ -25,9 +25,9 @@ import shutil
 import time
 from collections.abc import Callable, Iterable
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
-from .errors import Conflict, InvalidConfig, NotFound
+from .errors import Conflict, InvalidConfig, NotFound, Unavailable
 from .eventcache import EventCache
 from .labellog import FileLog, LabelLog
 from .models import Model, ModelConfig
@@ -35,7 +35,8 @@ from .settings import Settings
 from .snapshots import SnapshotInfo, SnapshotStore
 
 if TYPE_CHECKING:
-    from .redisstate import RedisState
+    from .redislog import RedisLog
+    from .redisstate import RedisSnapshots, RedisState
 
 logger = logging.getLogger("thresher.models")
 CONFIG_FORMAT = 1
@@ -227,7 +228,10 @@ class ModelRegistry:
             self.snapshot_fallbacks[config.name] = len(skipped)
             model.load_state(state)
             self.last_snapshot[config.name] = info
-        replayed = await self.replay(model)
+        if self.shared is None:
+            replayed = await self.replay(model)
+        else:  # the stream may hold restores and rebuilds besides labels
+            replayed = await shared_log.catch_up(model, store)
         logger.info(
             "model %s ready at offset %d (%d labels replayed from the log)",
             config.name,
@@ -300,13 +304,21 @@ class ModelRegistry:
         """Go back to a snapshot generation; labels after it are dropped from the weights.
 
         The restored state is written at once as a new snapshot at the current log head, so a
-        restart keeps the rollback instead of replaying the dropped labels.
+        restart keeps the rollback instead of replaying the dropped labels. With the Redis log
+        the restore is a control record every replica applies at its offset (`redisswitch`).
         """
         model = self.get(name)
-        self._single_replica("restoring a snapshot")
         store = self.stores[name]
+        if self.shared is not None:
+            await asyncio.to_thread(store.refresh)
         if not any(i.generation == generation for i in store.list()):
             raise NotFound(f"model {name!r} has no snapshot generation {generation}")
+        if self.shared is not None:
+            from . import redisswitch
+
+            await self._switch(model, redisswitch.restore(generation), "restoring a snapshot")
+            logger.info("model %s restored to generation %d on every replica", name, generation)
+            return self.get(name)
         async with self._lock(name):
             await model.quiesce("restoring a snapshot")
             try:
@@ -332,8 +344,12 @@ class ModelRegistry:
     ) -> Model:
         """Relearn from the log while ignoring chosen sources (a poisoned label feed)."""
         model = self.get(name)
-        self._single_replica("rebuilding")
         excluded = frozenset(exclude_sources)
+        if self.shared is not None:
+            control = await self._rebuild_control(name, excluded, from_snapshot)
+            await self._switch(model, control, "rebuilding")
+            logger.info("model %s rebuilt on every replica without %s", name, sorted(excluded))
+            return self.get(name)
         async with self._lock(name):
             await model.quiesce("rebuilding")
             try:
@@ -349,13 +365,8 @@ class ModelRegistry:
         name = model.name
         fresh = Model(model.config, model.log, cache=model.cache, max_fields=model.max_fields)
         if from_snapshot:
-            oldest = self.stores[name].list()
-            if not oldest:
-                raise InvalidConfig(
-                    "model has no snapshot to rebuild from; rebuild from empty instead",
-                    path="from_snapshot",
-                )
-            fresh.load_state(await asyncio.to_thread(self.stores[name].load, oldest[-1].generation))
+            oldest = self._oldest_snapshot(name)
+            fresh.load_state(await asyncio.to_thread(self.stores[name].load, oldest))
         elif model.log.first() > 0:
             raise Conflict(
                 f"the log of {name!r} no longer holds labels below offset "
@@ -368,15 +379,58 @@ class ModelRegistry:
         fresh.duplicates = model.duplicates
         return fresh
 
+    def _oldest_snapshot(self, name: str) -> int:
+        """The generation a rebuild ``from_snapshot`` starts from: the oldest one kept."""
+        infos = self.stores[name].list()
+        if not infos:
+            raise InvalidConfig(
+                "model has no snapshot to rebuild from; rebuild from empty instead",
+                path="from_snapshot",
+            )
+        return infos[-1].generation
+
+    async def _rebuild_control(
+        self, name: str, excluded: frozenset[str], from_snapshot: bool
+    ) -> dict[str, Any]:
+        from . import redisswitch
+
+        generation = None
+        if from_snapshot:
+            # Fixed here, so that every replica starts from the same one.
+            await asyncio.to_thread(self.stores[name].refresh)
+            generation = self._oldest_snapshot(name)
+        return redisswitch.rebuild(sorted(excluded), generation)
+
+    async def _switch(self, model: Model, control: dict[str, Any], what: str) -> None:
+        """Redis log: append a restore or rebuild; answer once this replica has applied it."""
+        from . import redisswitch
+
+        name = model.name
+        store = cast("RedisSnapshots", self.stores[name])
+        async with self._lock(name):
+            await model.quiesce(what)  # this replica's labels get 503 until it has switched
+            try:
+                offset = await redisswitch.append(
+                    cast("RedisLog", model.log), store, control, model.config.classes
+                )
+                try:
+                    await model.wait_applied(offset, timeout=redisswitch.APPLY_TIMEOUT)
+                except Unavailable:
+                    raise Unavailable(
+                        f"{what} was appended to the stream of {name!r} at offset {offset} and "
+                        "every replica applies it there, but this one has not yet. Do not send it "
+                        f"again: watch GET /api/models/{name} until its offset passes {offset}",
+                        retry_after=5.0,
+                    ) from None
+            finally:
+                model.frozen = None
+            try:  # a restart then starts past the switch; another replica may be writing one
+                await self.snapshot(name)
+            except Unavailable as exc:
+                logger.warning("model %s: no snapshot after %s: %s", name, what, exc)
+
     def _lock(self, name: str) -> asyncio.Lock:
         return self._locks.setdefault(name, asyncio.Lock())
-
-    def _single_replica(self, what: str) -> None:
-        if self.shared is not None:
-            raise Conflict(
-                f"{what} is not available with the Redis log: every replica would have to "
-                "switch state at the same stream offset; delete and re-create the model instead"
-            )
 
 
 async def replay(model: Model, *, chunk: int = REPLAY_CHUNK) -> int:

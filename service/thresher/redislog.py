@@ -8,15 +8,19 @@ model's incarnation token, so a model deleted and created again never meets its 
     thresher:{name}:T:seq       counter records appended so far: the head offset
     thresher:{name}:T:stream    stream  entry ``0-n`` holds offset n-1 in field ``d``
     thresher:{name}:T:applied   hash    event id -> label: exactly-once admission
+    thresher:{name}:T:excluded  set     sources whose labels are appended but never applied
+    thresher:{name}:T:freeze    string  set while a restore or rebuild is being appended
     thresher:{name}:T:ev:ID     string  msgpack [fields, served label, time], with a TTL
     thresher:{name}:T:snaps     hash    generation -> msgpack {offset, time, bytes, chunks}
     thresher:{name}:T:snap:G:I  string  chunk I of snapshot generation G
     thresher:{name}:T:snapgen, :snaplock  generation counter; writer lock (SET NX PX)
+    thresher:{name}:T:applied:next  the applied ids a restore or rebuild leaves, staged
 
 One Lua script admits a batch atomically: a conflict refuses it whole, duplicates are left
 out, and every new record takes the next dense offset. Each replica's follower applies the
-stream in order, so replicas at one offset hold bit-identical weights. The clients, the model
-directory and the snapshot store are in `redisstate`.
+stream in order, so replicas at one offset hold bit-identical weights. Restores and rebuilds
+are control records in the stream (`redisswitch`). The clients, the model directory and the
+snapshot store are in `redisstate`.
 """
 
 from __future__ import annotations
@@ -42,16 +46,28 @@ HEAD_EVERY, INDEX_EVERY = 0.25, 0.5  # seconds between the follower's head and i
 BACKOFF_MIN, BACKOFF_MAX, RETRY_AFTER = 0.05, 2.0, 2.0
 SHARE_TIMEOUT, WAIT_MS = 1.0, 1000
 OUTBOX_MAX, RECALL_GRACE = 10_000, 0.02  # queued scored events; second look for a miss
-ADMITTED, CONFLICT, GONE = 0, 1, 2  # the first element of the script's answer
+ADMITTED, CONFLICT, GONE, FROZEN = 0, 1, 2, 3  # the first element of the script's answer
 FAILURES = (RedisError, OSError)
 
 _log = logging.getLogger("thresher.redis")
 
-# KEYS: seq, stream, applied, live. ARGV: token, n, then n triples (id or "", label, payload).
+# KEYS: seq, stream, applied, live, freeze, excluded. ARGV: token, n, then n triples (id or
+# "", label, payload). A record from an excluded source is appended but never applied, so its
+# id stays open, as in the file log; only then are payloads decoded here.
 APPEND = """
 if redis.call('GET', KEYS[4]) ~= ARGV[1] then return {2} end
+if redis.call('EXISTS', KEYS[5]) == 1 then return {3} end
 local n = tonumber(ARGV[2])
-local dup = {}
+local dup, open = {}, {}
+if redis.call('SCARD', KEYS[6]) > 0 then
+  for i = 0, n - 1 do
+    local ok, record = pcall(cmsgpack.unpack, ARGV[5 + 3 * i])
+    if ok and type(record) == 'table' and type(record['source']) == 'string'
+        and redis.call('SISMEMBER', KEYS[6], record['source']) == 1 then
+      open[i] = true
+    end
+  end
+end
 for i = 0, n - 1 do
   local id = ARGV[3 + 3 * i]
   if id ~= '' then
@@ -65,7 +81,8 @@ end
 local first, count = -1, 0
 for i = 0, n - 1 do
   local id = ARGV[3 + 3 * i]
-  if not dup[i] and id ~= '' and redis.call('HSETNX', KEYS[3], id, ARGV[4 + 3 * i]) == 0 then
+  if not dup[i] and id ~= '' and not open[i]
+      and redis.call('HSETNX', KEYS[3], id, ARGV[4 + 3 * i]) == 0 then
     dup[i] = true
   end
   if not dup[i] then
@@ -103,6 +120,8 @@ class Keys:
         self.base = base
         self.seq, self.stream, self.applied = base + "seq", base + "stream", base + "applied"
         self.snaps, self.snapgen, self.lock = base + "snaps", base + "snapgen", base + "snaplock"
+        self.freeze, self.excluded = base + "freeze", base + "excluded"
+        self.staged = base + "applied:next"
 
     def event(self, event_id: str) -> str:
         return f"{self.base}ev:{event_id}"
@@ -145,6 +164,10 @@ class RedisLog(LabelLog):
     def first(self) -> int:
         return self._first
 
+    def saw(self, head: int) -> None:
+        """Note that the stream holds at least ``head`` records."""
+        self._head = max(self._head, head)
+
     async def append(self, payloads: list[bytes]) -> int:
         """Append records that need no exactly-once check; returns the first offset."""
         first, _, _ = await self.admit(payloads, [(None, "")] * len(payloads))
@@ -169,6 +192,11 @@ class RedisLog(LabelLog):
             for entry_id, data in batch:
                 if _offset(entry_id) != cursor:
                     raise OffsetOutOfRange(f"offset {cursor} is no longer in the stream")
+                if b"d" not in data:
+                    raise RuntimeError(
+                        f"offset {cursor} of model {self.name!r} is a restore or rebuild, not a "
+                        "label; apply the stream with catch_up"
+                    )
                 yield cursor, data[b"d"]
                 cursor += 1
 
@@ -205,7 +233,8 @@ class RedisLog(LabelLog):
         args: list[Any] = [self.token, len(payloads)]
         for (event_id, label), payload in zip(keys, payloads, strict=True):
             args += [event_id or "", label, payload]
-        ks = [self.keys.seq, self.keys.stream, self.keys.applied, self.keys.live]
+        ks = [self.keys.seq, self.keys.stream, self.keys.applied, self.keys.live,
+              self.keys.freeze, self.keys.excluded]  # fmt: skip
         want, confirmed = self.state.wait_replicas, None
         try:
             if want:
@@ -227,6 +256,12 @@ class RedisLog(LabelLog):
         code = int(reply[0])
         if code == GONE:
             raise NotFound(f"model {self.name!r} was deleted on another replica")
+        if code == FROZEN:
+            raise Unavailable(
+                f"model {self.name!r} is being restored or rebuilt; labels are refused until "
+                "that is appended to its stream (seconds); nothing was appended, retry shortly",
+                retry_after=RETRY_AFTER,
+            )
         if code == CONFLICT:
             return -1, [], (int(reply[1]), reply[2].decode())
         first, count = int(reply[1]), int(reply[2])
@@ -330,6 +365,25 @@ class RedisLog(LabelLog):
                 _log.exception("model %s: cannot apply stream offset %d", self.name, model.offset)
                 await asyncio.sleep(BACKOFF_MAX)
 
+    async def catch_up(self, model: Model, store: RedisSnapshots) -> int:
+        """Apply the stream from the model's offset to the head as read now; the count."""
+        from .redisswitch import entries
+
+        await self.refresh()
+        start, end = model.offset, self._head
+        if not self._first <= start <= end:
+            raise OffsetOutOfRange(f"offset {start} is outside the stream ({self._first}..{end})")
+        while model.offset < end:
+            before, run = model.offset, []
+            async for offset, data in entries(self, model.offset, end):
+                run.append((_sid(offset).encode(), data))
+                if len(run) == READ_BATCH:
+                    break
+            await self._apply(model, run, store)
+            if model.offset == before:
+                raise OffsetOutOfRange(f"offset {before} is no longer in the stream")
+        return model.offset - start
+
     async def _refresh_head(self, model: Model) -> None:
         seq = int(await self.state.client.get(self.keys.seq) or 0)
         if seq < model.offset:
@@ -352,6 +406,13 @@ class RedisLog(LabelLog):
                 self._apply_run(model, payloads)
                 await self._resync(model, store, offset)
                 return
+            if b"d" not in data:  # a restore or rebuild: every replica switches state here
+                from . import redisswitch
+
+                self._apply_run(model, payloads)
+                payloads = []
+                await redisswitch.apply(self, model, offset, data[b"c"], store)
+                continue
             payloads.append(data[b"d"])
             if len(payloads) == YIELD_EVERY:
                 self._apply_run(model, payloads)

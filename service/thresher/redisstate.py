@@ -150,7 +150,7 @@ class RedisState:
                 for i in range(int(msgpack.unpackb(meta)["chunks"]))
             ]
             await client.unlink(keys.seq, keys.stream, keys.applied, keys.snaps, keys.snapgen,
-                                *chunks)  # fmt: skip
+                                keys.excluded, keys.freeze, keys.staged, *chunks)  # fmt: skip
             async for batch in _batches(client.scan_iter(match=keys.event("*"), count=1000)):
                 await client.unlink(*batch)
         except FAILURES as exc:
