@@ -16,11 +16,11 @@ model's incarnation token, so a model deleted and created again never meets its 
     thresher:{name}:T:snapgen, :snaplock  generation counter; writer lock (SET NX PX)
     thresher:{name}:T:applied:next  the applied ids a restore or rebuild leaves, staged
 
-One Lua script admits a batch atomically: a conflict refuses it whole, duplicates are left
-out, and every new record takes the next dense offset. Each replica's follower applies the
-stream in order, so replicas at one offset hold bit-identical weights. Restores and rebuilds
-are control records in the stream (`redisswitch`). The clients, the model directory and the
-snapshot store are in `redisstate`.
+One Lua script admits a batch atomically (`redisadmit`): a conflict refuses it whole,
+duplicates are left out, and every new record takes the next dense offset. Each replica's
+follower applies the stream in order, so replicas at one offset hold bit-identical weights.
+Restores and rebuilds are control records in the stream (`redisswitch`). The clients, the
+model directory and the snapshot store are in `redisstate`.
 """
 
 from __future__ import annotations
@@ -34,7 +34,7 @@ from typing import TYPE_CHECKING, Any
 import msgpack
 from redis.exceptions import RedisError
 
-from .errors import LogUnavailable, NotFound, Unavailable
+from .errors import LogUnavailable, Unavailable
 from .labellog import LabelLog, OffsetOutOfRange
 
 if TYPE_CHECKING:
@@ -44,58 +44,11 @@ if TYPE_CHECKING:
 READ_BATCH, BLOCK_MS, YIELD_EVERY = 1000, 1000, 256  # records applied as one batch per yield
 HEAD_EVERY, INDEX_EVERY = 0.25, 0.5  # seconds between the follower's head and index reads
 BACKOFF_MIN, BACKOFF_MAX, RETRY_AFTER = 0.05, 2.0, 2.0
-SHARE_TIMEOUT, WAIT_MS = 1.0, 1000
+SHARE_TIMEOUT = 1.0
 OUTBOX_MAX, RECALL_GRACE = 10_000, 0.02  # queued scored events; second look for a miss
-ADMITTED, CONFLICT, GONE, FROZEN = 0, 1, 2, 3  # the first element of the script's answer
 FAILURES = (RedisError, OSError)
 
 _log = logging.getLogger("thresher.redis")
-
-# KEYS: seq, stream, applied, live, freeze, excluded. ARGV: token, n, then n triples (id or
-# "", label, payload). A record from an excluded source is appended but never applied, so its
-# id stays open, as in the file log; only then are payloads decoded here.
-APPEND = """
-if redis.call('GET', KEYS[4]) ~= ARGV[1] then return {2} end
-if redis.call('EXISTS', KEYS[5]) == 1 then return {3} end
-local n = tonumber(ARGV[2])
-local dup, open = {}, {}
-if redis.call('SCARD', KEYS[6]) > 0 then
-  for i = 0, n - 1 do
-    local ok, record = pcall(cmsgpack.unpack, ARGV[5 + 3 * i])
-    if ok and type(record) == 'table' and type(record['source']) == 'string'
-        and redis.call('SISMEMBER', KEYS[6], record['source']) == 1 then
-      open[i] = true
-    end
-  end
-end
-for i = 0, n - 1 do
-  local id = ARGV[3 + 3 * i]
-  if id ~= '' then
-    local have = redis.call('HGET', KEYS[3], id)
-    if have then
-      if have ~= ARGV[4 + 3 * i] then return {1, i, have} end
-      dup[i] = true
-    end
-  end
-end
-local first, count = -1, 0
-for i = 0, n - 1 do
-  local id = ARGV[3 + 3 * i]
-  if not dup[i] and id ~= '' and not open[i]
-      and redis.call('HSETNX', KEYS[3], id, ARGV[4 + 3 * i]) == 0 then
-    dup[i] = true
-  end
-  if not dup[i] then
-    local seq = redis.call('INCR', KEYS[1])
-    redis.call('XADD', KEYS[2], '0-' .. seq, 'd', ARGV[5 + 3 * i])
-    if first < 0 then first = seq - 1 end
-    count = count + 1
-  end
-end
-local out = {0, first, count}
-for i = 0, n - 1 do if dup[i] then out[#out + 1] = i end end
-return out
-"""
 
 
 def _sid(offset: int) -> str:
@@ -230,51 +183,10 @@ class RedisLog(LabelLog):
         self, payloads: list[bytes], keys: list[tuple[str | None, str]]
     ) -> tuple[int, list[int], tuple[int, str] | None]:
         """Append what is new, atomically: (first offset, duplicate positions, conflict)."""
-        args: list[Any] = [self.token, len(payloads)]
-        for (event_id, label), payload in zip(keys, payloads, strict=True):
-            args += [event_id or "", label, payload]
-        ks = [self.keys.seq, self.keys.stream, self.keys.applied, self.keys.live,
-              self.keys.freeze, self.keys.excluded]  # fmt: skip
-        want, confirmed = self.state.wait_replicas, None
-        try:
-            if want:
-                # WAIT counts this connection's writes, so it rides in the script's pipeline.
-                async with self.state.client.pipeline(transaction=False) as pipe:
-                    await self.state.append(keys=ks, args=args, client=pipe)
-                    pipe.wait(want, WAIT_MS)
-                    reply, confirmed = await pipe.execute()
-            else:
-                reply = await self.state.append(keys=ks, args=args)
-        except FAILURES as exc:
-            self.state.failed(exc)
-            raise unavailable(
-                exc,
-                "nothing was acknowledged. If the call timed out the labels may still be "
-                "applied; a retry with the same ids is safe (they count as duplicates)",
-            ) from exc
-        self.state.up()
-        code = int(reply[0])
-        if code == GONE:
-            raise NotFound(f"model {self.name!r} was deleted on another replica")
-        if code == FROZEN:
-            raise Unavailable(
-                f"model {self.name!r} is being restored or rebuilt; labels are refused until "
-                "that is appended to its stream (seconds); nothing was appended, retry shortly",
-                retry_after=RETRY_AFTER,
-            )
-        if code == CONFLICT:
-            return -1, [], (int(reply[1]), reply[2].decode())
-        first, count = int(reply[1]), int(reply[2])
-        if count:
-            self._head = max(self._head, first + count)
-        if count and confirmed is not None and int(confirmed) < want:
-            raise LogUnavailable(
-                f"the labels reached the Redis primary but only {confirmed} of {want} replicas "
-                f"confirmed them within {WAIT_MS} ms; they may still be applied later, and a "
-                "retry with the same ids is safe (they count as duplicates)",
-                retry_after=RETRY_AFTER,
-            )
-        return first, [int(i) for i in reply[3:]], None
+        # The script's module imports this one, as redisswitch does.
+        from .redisadmit import admit
+
+        return await admit(self, payloads, keys)
 
     async def share(self, scored: list[tuple[str, Any, str]], now: float) -> None:
         """Queue scored events (id, fields, served label) for other replicas; never waits."""

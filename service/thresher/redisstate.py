@@ -26,8 +26,8 @@ from redis.retry import Retry
 
 from . import snapshots
 from .errors import Conflict, InvalidConfig, NotFound, Unavailable
+from .redisadmit import APPEND
 from .redislog import (
-    APPEND,
     BACKOFF_MAX,
     BACKOFF_MIN,
     BLOCK_MS,
