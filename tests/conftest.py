@@ -15,6 +15,7 @@ import socket
 import subprocess
 import sys
 import time
+import urllib.request
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -82,7 +83,7 @@ class ServerProcess:
     def __init__(self, data_dir: Path, **flags: Any) -> None:
         self.data_dir = data_dir
         self.port = free_port()
-        self.flags = flags
+        self.flags = {"snapshot_interval": 0.5, "snapshot_every": 150, **flags}
         self.proc: subprocess.Popen[bytes] | None = None
         self.url = f"http://127.0.0.1:{self.port}"
 
@@ -96,10 +97,6 @@ class ServerProcess:
             str(self.data_dir),
             "--port",
             str(self.port),
-            "--snapshot-interval",
-            "0.5",
-            "--snapshot-every",
-            "150",
             "--log-level",
             "warning",
         ]
@@ -112,9 +109,7 @@ class ServerProcess:
     async def wait_ready(self, session: aiohttp.ClientSession, timeout: float = 30.0) -> None:
         deadline = time.monotonic() + timeout
         while time.monotonic() < deadline:
-            if self.proc is not None and self.proc.poll() is not None:
-                err = self.log_path.read_text(errors="replace")
-                raise AssertionError(f"server exited with {self.proc.returncode}: {err[-2000:]}")
+            self._check_running()
             try:
                 async with session.get(self.url + "/readyz") as resp:
                     if resp.status == 200:
@@ -123,6 +118,23 @@ class ServerProcess:
                 pass
             await asyncio.sleep(0.05)
         raise AssertionError("server did not become ready")
+
+    def wait_ready_blocking(self, timeout: float = 30.0) -> None:
+        """`wait_ready` for a caller without an event loop (a fixture, or a worker thread)."""
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            self._check_running()
+            # A 503 from /readyz while it recovers is an HTTPError, an OSError.
+            with contextlib.suppress(OSError), urllib.request.urlopen(self.url + "/readyz") as resp:
+                if resp.status == 200:
+                    return
+            time.sleep(0.05)
+        raise AssertionError(f"server not ready: {self.log_path.read_text()[-2000:]}")
+
+    def _check_running(self) -> None:
+        if self.proc is not None and self.proc.poll() is not None:
+            err = self.log_path.read_text(errors="replace")
+            raise AssertionError(f"server exited with {self.proc.returncode}: {err[-2000:]}")
 
     def kill(self) -> None:
         if self.proc is not None and self.proc.poll() is None:

@@ -13,9 +13,7 @@ import contextlib
 import json
 import signal
 import subprocess
-import sys
 import time
-import urllib.request
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -27,7 +25,7 @@ import redis
 from aiohttp import web
 from aiohttp.test_utils import TestServer
 
-from conftest import free_port, require_binary
+from conftest import ServerProcess, free_port, require_binary
 from thresher.errors import LogUnavailable, NotFound
 from thresher.http import create_app
 from thresher.redisstate import RedisState
@@ -124,57 +122,12 @@ class RedisServer:
         return redis.Redis(port=self.port)
 
 
-class Replica:
-    """``thresher serve`` in a subprocess with its own data directory and port."""
+class Replica(ServerProcess):
+    """``thresher serve --log LOG`` in a subprocess with its own data directory and port."""
 
     def __init__(self, root: Path, name: str, log: str, **flags: Any) -> None:
-        self.data_dir = root / name
-        self.port = free_port()
-        self.url = f"http://127.0.0.1:{self.port}"
-        self.flags = {"log": log, "snapshot_interval": 1, "snapshot_every": 200, **flags}
-        self.proc: subprocess.Popen[bytes] | None = None
-
-    def start(self) -> None:
-        args = [
-            sys.executable,
-            "-m",
-            "thresher.cli",
-            "serve",
-            "--data-dir",
-            str(self.data_dir),
-            "--port",
-            str(self.port),
-            "--log-level",
-            "warning",
-        ]
-        for key, value in self.flags.items():
-            args += ["--" + key.replace("_", "-"), str(value)]
-        self.log_path = self.data_dir.parent / f"{self.data_dir.name}.log"
-        with open(self.log_path, "ab") as log:
-            self.proc = subprocess.Popen(args, stdout=subprocess.DEVNULL, stderr=log)
-
-    def wait_ready(self, timeout: float = 30.0) -> None:
-        deadline = time.monotonic() + timeout
-        while time.monotonic() < deadline:
-            if self.proc is not None and self.proc.poll() is not None:
-                raise AssertionError(f"replica exited: {self.log_path.read_text()[-2000:]}")
-            # A 503 from /readyz while it recovers is an HTTPError, an OSError.
-            with contextlib.suppress(OSError), urllib.request.urlopen(self.url + "/readyz") as resp:
-                if resp.status == 200:
-                    return
-            time.sleep(0.05)
-        raise AssertionError(f"replica not ready: {self.log_path.read_text()[-2000:]}")
-
-    def kill(self) -> None:
-        if self.proc is not None and self.proc.poll() is None:
-            self.proc.send_signal(signal.SIGKILL)
-            self.proc.wait()
-
-    def stop(self) -> int:
-        if self.proc is None or self.proc.poll() is not None:
-            return 0 if self.proc is None else self.proc.returncode
-        self.proc.send_signal(signal.SIGTERM)
-        return self.proc.wait(timeout=30)
+        defaults = {"log": log, "snapshot_interval": 1, "snapshot_every": 200}
+        super().__init__(root / name, **{**defaults, **flags})
 
 
 async def call(
@@ -226,27 +179,33 @@ async def converged(
         await asyncio.sleep(0.05)
 
 
-@pytest.fixture(scope="module")
-def cluster(
-    tmp_path_factory: pytest.TempPathFactory,
-) -> Iterator[tuple[RedisServer, list[Replica]]]:
-    """One Redis and three replicas shared by the non-destructive tests (one model each)."""
-    root = tmp_path_factory.mktemp("cluster")
+@contextlib.contextmanager
+def three_replicas(root: Path, **flags: Any) -> Iterator[tuple[RedisServer, list[Replica]]]:
+    """One Redis and three replicas started with ``flags``; each must stop with exit code 0."""
     server = RedisServer(root / "redis")
     server.start()
-    # No automatic snapshots here, so the stream keeps every record for the reference server.
-    quiet = {"snapshot_interval": 0, "snapshot_every": 0}
-    replicas = [Replica(root, f"replica{k}", server.url, **quiet) for k in range(3)]
+    replicas = [Replica(root, f"replica{k}", server.url, **flags) for k in range(3)]
     try:
         for replica in replicas:
             replica.start()
         for replica in replicas:
-            replica.wait_ready()
+            replica.wait_ready_blocking()
         yield server, replicas
     finally:
         codes = [replica.stop() for replica in replicas]
         server.stop()
     assert codes == [0, 0, 0], codes  # a graceful SIGTERM exits 0 in Redis mode too
+
+
+@pytest.fixture(scope="module")
+def cluster(
+    tmp_path_factory: pytest.TempPathFactory,
+) -> Iterator[tuple[RedisServer, list[Replica]]]:
+    """One Redis and three replicas shared by the non-destructive tests (one model each)."""
+    # No automatic snapshots here, so the stream keeps every record for the reference server.
+    quiet = {"snapshot_interval": 0, "snapshot_every": 0}
+    with three_replicas(tmp_path_factory.mktemp("cluster"), **quiet) as running:
+        yield running
 
 
 async def test_interleaved_replicas_match_one_file_log_server(
@@ -284,7 +243,7 @@ async def test_interleaved_replicas_match_one_file_log_server(
         reference = Replica(tmp_path, "file", "file")
         reference.start()
         try:
-            await asyncio.to_thread(reference.wait_ready)
+            await asyncio.to_thread(reference.wait_ready_blocking)
             await ok(session, "POST", f"{reference.url}/api/models", model_body("spread"))
             for _, r in records:  # one request per record keeps the stream order exactly
                 body = {
@@ -394,7 +353,7 @@ async def test_late_replica_catches_up_from_snapshot_and_stream(
         late = Replica(tmp_path, "late", server.url)
         late.start()
         try:
-            await asyncio.to_thread(late.wait_ready)
+            await asyncio.to_thread(late.wait_ready_blocking)
             both = [a, late.url]
             await converged(session, both, "late", 500)
             more = labels("late", ROWS[500:], 500)
@@ -430,7 +389,7 @@ async def test_redis_outage_and_killed_replica_lose_no_acknowledged_label(
         for replica in (a, b):
             replica.start()
         for replica in (a, b):
-            await asyncio.to_thread(replica.wait_ready)
+            await asyncio.to_thread(replica.wait_ready_blocking)
         async with aiohttp.ClientSession(timeout=aiohttp.ClientTimeout(total=10)) as session:
             await ok(session, "POST", f"{a.url}/api/models", model_body("faults"))
             await converged(session, [a.url, b.url], "faults", 0)
@@ -481,7 +440,7 @@ async def test_redis_outage_and_killed_replica_lose_no_acknowledged_label(
             await asyncio.sleep(0.2)
             b.start()
             await feeders
-            await asyncio.to_thread(b.wait_ready)
+            await asyncio.to_thread(b.wait_ready_blocking)
             head = head_of(server, "faults")
             summaries = await converged(session, [a.url, b.url], "faults", head)
             for url in (a.url, b.url):  # every acknowledged label survived: all duplicates now

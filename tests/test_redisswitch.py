@@ -32,6 +32,7 @@ from test_redis import (
     model_body,
     ok,
     stream_key,
+    three_replicas,
 )
 from thresher.http import create_app
 from thresher.settings import Settings
@@ -96,21 +97,9 @@ def switched(
     tmp_path_factory: pytest.TempPathFactory,
 ) -> Iterator[tuple[RedisServer, list[Replica]]]:
     """One Redis and three replicas; a large --log-retain keeps every record in the streams."""
-    root = tmp_path_factory.mktemp("switched")
-    server = RedisServer(root / "redis")
-    server.start()
     quiet = {"snapshot_interval": 0, "snapshot_every": 0, "log_retain": 1_000_000}
-    replicas = [Replica(root, f"replica{k}", server.url, **quiet) for k in range(3)]
-    try:
-        for replica in replicas:
-            replica.start()
-        for replica in replicas:
-            replica.wait_ready()
-        yield server, replicas
-    finally:
-        codes = [replica.stop() for replica in replicas]
-        server.stop()
-    assert codes == [0, 0, 0], codes
+    with three_replicas(tmp_path_factory.mktemp("switched"), **quiet) as running:
+        yield running
 
 
 async def test_rebuild_without_a_source_switches_every_replica(
@@ -154,7 +143,7 @@ async def test_rebuild_without_a_source_switches_every_replica(
         # The requester wrote a snapshot past the switch; without it a restart replays it.
         assert drop_snapshots_from(server, "poisoned", head + 1) == 1
         replicas[2].start()
-        await asyncio.to_thread(replicas[2].wait_ready)
+        await asyncio.to_thread(replicas[2].wait_ready_blocking)
         await converged(session, urls, "poisoned", head + 1)
 
         # After the switch, on the replicas and on a file-log server doing the same:
@@ -248,7 +237,7 @@ async def test_restore_rolls_every_replica_back_and_reopens_ids(
         )
         assert drop_snapshots_from(server, "rolled", 301) == 1
         replicas[2].start()
-        await asyncio.to_thread(replicas[2].wait_ready)
+        await asyncio.to_thread(replicas[2].wait_ready_blocking)
         back = await converged(session, urls, "rolled", 301)
 
         # Labels rolled back are open again, even with the other class; earlier ones are not.
