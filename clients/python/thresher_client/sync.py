@@ -3,16 +3,32 @@
 from __future__ import annotations
 
 import asyncio
+import functools
 import random
 import threading
-from collections.abc import Coroutine, Iterable, Mapping, Sequence
+from collections.abc import Callable, Coroutine, Iterable
 from types import TracebackType
-from typing import Any, TypeVar
+from typing import Any, Concatenate, ParamSpec, TypeVar
 
 from .aio import AsyncClient, EventLike, LabelLike
-from .types import LabelAck, ModelInfo, Quality, ScoreResult, SnapshotInfo
+from .types import LabelAck, ScoreResult
 
 T = TypeVar("T")
+P = ParamSpec("P")
+
+
+def _blocking(
+    method: Callable[Concatenate[AsyncClient, P], Coroutine[Any, Any, T]],
+) -> Callable[Concatenate[Client, P], T]:
+    """``AsyncClient.method`` as a :class:`Client` method: run on its loop, waited for."""
+    name = method.__name__
+
+    @functools.wraps(method)
+    def call(self: Client, /, *args: P.args, **kwargs: P.kwargs) -> T:
+        return self._run(getattr(self._client, name)(*args, **kwargs))
+
+    call.__qualname__ = f"Client.{name}"
+    return call
 
 
 class Client:
@@ -79,39 +95,19 @@ class Client:
             raise RuntimeError("this Client is closed; make a new one")
         return asyncio.run_coroutine_threadsafe(call, self._loop).result()
 
-    def create_model(
-        self,
-        name: str,
-        classes: Sequence[str],
-        *,
-        features: Mapping[str, Any] | None = None,
-        bits: int = 20,
-        rule: str = "classic",
-        margin: float = 0.0,
-        aggressiveness: float = 1.0,
-        seed: int = 0,
-        signed: bool = True,
-    ) -> ModelInfo:
-        """See :meth:`AsyncClient.create_model`."""
-        return self._run(
-            self._client.create_model(
-                name, classes, features=features, bits=bits, rule=rule, margin=margin,
-                aggressiveness=aggressiveness, seed=seed, signed=signed,
-            )
-        )  # fmt: skip
+    # Each of these only runs the AsyncClient method of the same name on the client's loop.
+    create_model = _blocking(AsyncClient.create_model)
+    models = _blocking(AsyncClient.models)
+    model = _blocking(AsyncClient.model)
+    delete_model = _blocking(AsyncClient.delete_model)
+    quality = _blocking(AsyncClient.quality)
+    snapshots = _blocking(AsyncClient.snapshots)
+    take_snapshot = _blocking(AsyncClient.take_snapshot)
+    restore_snapshot = _blocking(AsyncClient.restore_snapshot)
+    rebuild = _blocking(AsyncClient.rebuild)
+    ready = _blocking(AsyncClient.ready)
 
-    def models(self) -> list[ModelInfo]:
-        """See :meth:`AsyncClient.models`."""
-        return self._run(self._client.models())
-
-    def model(self, name: str) -> ModelInfo:
-        """See :meth:`AsyncClient.model`."""
-        return self._run(self._client.model(name))
-
-    def delete_model(self, name: str) -> None:
-        """See :meth:`AsyncClient.delete_model`."""
-        self._run(self._client.delete_model(name))
-
+    # These read their iterable here, on the caller's thread, not on the client's loop.
     def score(self, model: str, events: Iterable[EventLike], *,
               explain: int = 0) -> list[ScoreResult]:  # fmt: skip
         """See :meth:`AsyncClient.score`."""
@@ -122,34 +118,7 @@ class Client:
         """See :meth:`AsyncClient.label`."""
         return self._run(self._client.label(model, list(labels), source=source, wait=wait))
 
-    def quality(self, model: str) -> Quality:
-        """See :meth:`AsyncClient.quality`."""
-        return self._run(self._client.quality(model))
-
-    def snapshots(self, model: str) -> list[SnapshotInfo]:
-        """See :meth:`AsyncClient.snapshots`."""
-        return self._run(self._client.snapshots(model))
-
-    def take_snapshot(self, model: str) -> SnapshotInfo:
-        """See :meth:`AsyncClient.take_snapshot`."""
-        return self._run(self._client.take_snapshot(model))
-
-    def restore_snapshot(self, model: str, generation: int) -> ModelInfo:
-        """See :meth:`AsyncClient.restore_snapshot`."""
-        return self._run(self._client.restore_snapshot(model, generation))
-
-    def rebuild(self, model: str, *, exclude_sources: Sequence[str],
-                from_snapshot: bool = False) -> ModelInfo:  # fmt: skip
-        """See :meth:`AsyncClient.rebuild`."""
-        call = self._client.rebuild(
-            model, exclude_sources=exclude_sources, from_snapshot=from_snapshot
-        )
-        return self._run(call)
-
-    def ready(self) -> bool:
-        """See :meth:`AsyncClient.ready`."""
-        return self._run(self._client.ready())
-
+    # Without AsyncClient.wait_ready's polling interval.
     def wait_ready(self, timeout: float = 30.0) -> None:
         """See :meth:`AsyncClient.wait_ready`."""
         self._run(self._client.wait_ready(timeout))
