@@ -162,3 +162,25 @@ def test_payloads_apply_as_records_and_stop_at_a_corrupt_one() -> None:
     assert batched.offset == 1000
     assert batched.digest() == one.digest()
     assert list(batched.recent_mistakes) == list(one.recent_mistakes)
+
+
+def test_mistakes_explained_when_read_match_those_explained_at_once() -> None:
+    # Batches leave their mistakes' tokens until recent_mistakes is read; reads between runs,
+    # and one-record runs that push unread batch mistakes out, must not change what is shown.
+    recs = _records(6000, multi=False)
+    one, batched = _model("classic", ["fine", "fraud"]), _model("classic", ["fine", "fraud"])
+    recs_one, recs_batched = copy.deepcopy(recs), copy.deepcopy(recs)
+    sizes, reads = itertools.cycle((900, 1, 1, 1, 1500, 30, 1, 2048)), 0
+    while batched.offset < len(recs):
+        start, size = batched.offset, next(sizes)
+        for offset in range(start, min(start + size, len(recs))):
+            one.apply(offset, recs_one[offset])
+        batched.apply_batch(start, recs_batched[start : start + size])
+        held = [(u.row.indices, u.row.values, u.before) for u in batched._unexplained]
+        assert all(array.base is None for arrays in held for array in arrays)  # no batch kept
+        if size != 1 and start % 2 == 0:
+            assert list(batched.recent_mistakes) == list(one.recent_mistakes)
+            assert not batched._unexplained
+            reads += 1
+    assert reads > 2 and list(batched.recent_mistakes) == list(one.recent_mistakes)
+    assert all(entry["top"] for entry in batched.recent_mistakes)

@@ -108,6 +108,55 @@ def test_record_rejects_non_records() -> None:
         records.decode(records.encode(RECORD)[:-3])
 
 
+def _decoded_one_by_one(payloads: list[bytes]) -> tuple[list[object], str | None]:
+    out = []
+    for data in payloads:
+        try:
+            out.append(records.decode(data))
+        except records.CorruptRecord as exc:
+            return out, str(exc)
+    return out, None
+
+
+def _packed(record: dict[str, object]) -> bytes:
+    return msgpack.packb(record, use_bin_type=True)
+
+
+@pytest.mark.parametrize(
+    ("where", "bad"),
+    [
+        (None, b""),  # every payload a record
+        (5, b"\xc1"),  # not msgpack
+        (5, b""),  # empty: the stream would read the next payload as this one's record
+        (5, records.encode(RECORD) + b"\x01"),  # a record and a stray byte
+        (5, records.encode(RECORD)[:-4]),  # a torn record: completed by the next payload
+        (9, records.encode(RECORD)[:-4]),  # torn and last
+        (5, _packed([1, 2])),
+        (5, _packed({**RECORD, "time": float("inf")})),
+        (5, _packed({**RECORD, "fields": {b"title": "cheap"}})),  # a bytes key (bin type)
+        (5, _packed({k: v for k, v in RECORD.items() if k != "served"})),
+    ],
+)
+def test_decode_many_fails_as_decode_does_on_each(where: int | None, bad: bytes) -> None:
+    payloads = [records.encode({**RECORD, "id": f"e{i}", "time": 1.0 + i}) for i in range(10)]
+    # Unusual but well-formed, after the bad payload: an integer time and extra keys are
+    # accepted by the exact check, to which the rest of the run then falls back.
+    payloads[7] = _packed({**RECORD, "time": 7, "extra": [1, {"x": None}]})
+    payloads[8] = _packed({"time": 2.5, **{k: v for k, v in RECORD.items() if k != "time"}})
+    if where is not None:
+        payloads[where] = bad
+    want, error = _decoded_one_by_one(payloads)
+    got, exc = records.decode_many(payloads)
+    assert got == want
+    assert (None if exc is None else str(exc)) == error
+    assert (error is None) == (where is None)
+    assert all(type(r["time"]) is type(w["time"]) for r, w in zip(got, want, strict=True))
+
+
+def test_decode_many_of_nothing() -> None:
+    assert records.decode_many([]) == ([], None)
+
+
 # -- appending and reading ----------------------------------------------------------------
 
 

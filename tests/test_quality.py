@@ -3,6 +3,7 @@ the Page–Hinkley drift test on generated mistake streams."""
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 from typing import Any
@@ -13,7 +14,7 @@ import pytest
 from sklearn.metrics import confusion_matrix, f1_score, precision_score, recall_score
 
 from thresher.errors import InvalidConfig, InvalidInput
-from thresher.quality import MAX_ALARMS_KEPT, DriftParams, Quality
+from thresher.quality import MAX_ALARMS_KEPT, MAX_SOURCES, DriftParams, Quality
 
 # A hand-checked binary stream of (truth, predicted); outcomes TN FP TP FN TP TN FP TP.
 LITERAL = [(0, 0), (0, 1), (1, 1), (1, 0), (1, 1), (0, 0), (0, 1), (1, 1)]
@@ -310,3 +311,72 @@ def test_bad_records_and_states_are_rejected() -> None:
     with pytest.raises(InvalidConfig) as cfg:
         Quality.from_state({k: v for k, v in state.items() if k != "ph"})
     assert cfg.value.path == "ph"
+
+
+# -- counting a run at once ------------------------------------------------------------------
+
+
+def _run_of(seed: int, n: int, k: int) -> dict[str, list[Any]]:
+    # Generated: a 5% mistake rate that jumps to 40% half way (so drift alarms fire), sources
+    # past MAX_SOURCES (so "(other)" is used), served labels on a third of the rows.
+    rng = np.random.default_rng(seed)
+    truths = rng.integers(k, size=n).tolist()
+    wrong = rng.random(n) < np.where(np.arange(n) < n // 2, 0.05, 0.40)
+    shift = rng.integers(1, k, size=n)
+    predicted = np.where(wrong, (np.asarray(truths) + shift) % k, truths).tolist()
+    served = [int(s) if i % 3 == 0 else None for i, s in enumerate(rng.integers(k, size=n))]
+    sources = [f"s{i % (MAX_SOURCES + 30)}" for i in range(n)]
+    return {"truths": truths, "predicted": predicted, "sources": sources, "served": served,
+            "times": [1000.0 + i for i in range(n)]}  # fmt: skip
+
+
+def _one_by_one(q: Quality, run: dict[str, list[Any]]) -> list[int]:
+    fired = []
+    for i, truth in enumerate(run["truths"]):
+        if q.record(truth, run["predicted"][i], source=run["sources"][i],
+                    served=run["served"][i], time=run["times"][i]):  # fmt: skip
+            fired.append(i)
+    return fired
+
+
+def _at_once(q: Quality, run: dict[str, list[Any]], cuts: list[int]) -> list[int]:
+    """record_many over pieces of the run cut at ``cuts``, resumed after every alarm."""
+    fired, bounds = [], [0, *cuts, len(run["truths"])]
+    for lo, hi in itertools.pairwise(bounds):
+        while lo < hi:
+            part = {key: values[lo:hi] for key, values in run.items()}
+            at = q.record_many(part["truths"], part["predicted"], sources=part["sources"],
+                               served=part["served"], times=part["times"])  # fmt: skip
+            if at is None:
+                break
+            fired.append(lo + at)
+            lo += at + 1
+    return fired
+
+
+@pytest.mark.parametrize(("k", "cuts"), [(2, []), (2, [1, 2, 700, 2500]), (3, [999, 1000])])
+def test_record_many_counts_as_record_does_one_by_one(k: int, cuts: list[int]) -> None:
+    run = _run_of(k, 6000, k)
+    drift = DriftParams(threshold=8.0, min_samples=20)
+    one = Quality([f"c{j}" for j in range(k)], windows=(50, 700), drift=drift, history_every=7,
+                  history_max=20)  # fmt: skip
+    many = Quality.from_state(one.state())
+    assert _at_once(many, run, cuts) == _one_by_one(one, run)
+    assert len(one.alarm_at) > 3 and len(one.by_source) == MAX_SOURCES + 1
+    assert one.history_stride > 7 and one.served_labelled > 0
+    assert many.counters_digest() == one.counters_digest()
+    assert many.state() == one.state()  # times in the history too
+    assert many.report() == one.report()
+
+
+def test_record_many_names_a_bad_label_after_counting_those_before_it() -> None:
+    run = _run_of(5, 40, 2)
+    run["predicted"][30] = 2  # not a class index of a two-class model
+    one, many = Quality(["a", "b"]), Quality(["a", "b"])
+    with pytest.raises(InvalidInput) as first:
+        _one_by_one(one, run)
+    with pytest.raises(InvalidInput) as second:
+        _at_once(many, run, [])
+    assert (first.value.path, second.value.path) == ("predicted", "predicted")
+    assert many.labelled == one.labelled == 30
+    assert many.counters_digest() == one.counters_digest()

@@ -35,6 +35,16 @@ RECENT_MISTAKES = 50
 OUTCOMES_KEPT = 1 << 17  # applied offsets whose mistake flag a waiting label request can read
 
 
+class _Unexplained(NamedTuple):
+    """A recent mistake whose top tokens are worked out when they are first read."""
+
+    entry: dict[str, Any]
+    fields: Mapping[str, Any]
+    row: SparseRow
+    before: np.ndarray  # (rows, nnz) served weights behind the prediction
+    predicted: int
+
+
 class BatchRow(NamedTuple):
     """Row ``i`` of a featurized batch, sliced out only when it is learned alone."""
 
@@ -54,12 +64,33 @@ class Applying:
     applied: dict[str, int]
     offset: int
     last_update: float
-    recent_mistakes: deque[dict[str, Any]]
     exclude_sources: frozenset[str]
     apply_on_append: bool
     _outcomes: dict[int, bool]
     _rows: dict[int, Any]
     _waiters: dict[int, asyncio.Future[None]]
+    _recent: deque[dict[str, Any]]
+    _unexplained: deque[_Unexplained]
+
+    @property
+    def recent_mistakes(self) -> deque[dict[str, Any]]:
+        """The last RECENT_MISTAKES mistakes, newest first, each with its top tokens.
+
+        A batch leaves its mistakes' tokens to be worked out here, when they are first read:
+        most are pushed out by later mistakes before anyone looks (a replay makes thousands).
+        """
+        if self._unexplained:
+            shown = {id(entry) for entry in self._recent}
+            for entry, fields, row, before, predicted in self._unexplained:
+                if id(entry) in shown:
+                    entry["top"] = self._explain_before(fields, row, before, predicted)
+            self._unexplained.clear()
+        return self._recent
+
+    @recent_mistakes.setter
+    def recent_mistakes(self, entries: deque[dict[str, Any]]) -> None:
+        self._recent = entries
+        self._unexplained = deque(maxlen=entries.maxlen)
 
     def apply(self, offset: int, record: dict[str, Any], row: Any = None) -> None:
         """Apply the record at ``offset`` (must be the next one) to learner and counters."""
@@ -102,19 +133,22 @@ class Applying:
                 ys.append(y)
         learned, ys, (indptr, indices, values) = self._featurize_run(recs, given, learned, ys)
         if learned:
-            keep = self.recent_mistakes.maxlen or 0
+            keep = self._recent.maxlen or 0
             labels = np.asarray(ys, dtype=np.int64)
             steps, befores = _learn(self.learner, indptr, indices, values, labels, keep)
-            predicted, mistakes = steps.predicted.tolist(), steps.mistakes.tolist()
-            for j, k in enumerate(learned):
-                self.offset = first + k + 1  # a drift alarm logs the offset it fired at
-                before = befores.get(j)
-                row = None
-                if before is not None:
-                    a, b = int(indptr[j]), int(indptr[j + 1])
-                    row = SparseRow(indices[a:b], values[a:b])
-                margins = steps.margins[j]
-                self._count(recs[k], ys[j], predicted[j], mistakes[j], margins, row, before)
+            run = [recs[k] for k in learned]
+            self._count_run(first, run, learned, ys, steps.predicted)
+            for j in np.flatnonzero(steps.mistakes).tolist():
+                run[j]["_mistake"] = True
+            for j, before in befores.items():
+                a, b = int(indptr[j]), int(indptr[j + 1])
+                row = SparseRow(indices[a:b].copy(), values[a:b].copy())  # not the whole batch
+                predicted = int(steps.predicted[j])
+                entry = self._mistake_entry(run[j], predicted, steps.margins[j], [])
+                self._recent.appendleft(entry)
+                self._unexplained.append(
+                    _Unexplained(entry, run[j]["fields"], row, before, predicted)
+                )
         self.offset = first + len(recs)
         self._applied_through(first, recs)
 
@@ -124,14 +158,10 @@ class Applying:
         A corrupt payload raises :class:`~thresher.records.CorruptRecord` once the records
         before it are applied, as applying them one by one would.
         """
-        recs: list[dict[str, Any]] = []
-        for payload in payloads:
-            try:
-                recs.append(records.decode(payload))
-            except records.CorruptRecord:
-                self.apply_batch(first, recs)
-                raise
+        recs, error = records.decode_many(payloads)
         self.apply_batch(first, recs)
+        if error is not None:
+            raise error
 
     def _featurize_run(
         self, recs: Sequence[dict[str, Any]], given: list[Any], learned: list[int], ys: list[int]
@@ -163,6 +193,41 @@ class Applying:
         kept = [(k, y) for k, y in zip(learned, ys, strict=True) if rows[k] is not None]
         csr = _stack([rows[k] for k, _ in kept])
         return [k for k, _ in kept], [y for _, y in kept], csr
+
+    def _count_run(
+        self,
+        first: int,
+        run: list[dict[str, Any]],
+        learned: list[int],
+        ys: list[int],
+        predicted: np.ndarray,
+    ) -> None:
+        """`_count`'s counters, applied ids and drift alarms for a learned run of records."""
+        guesses = predicted.tolist()
+        sources = [record["source"] for record in run]
+        times = [record.get("time") for record in run]
+        index = self.class_index
+        served = [None if (c := r.get("served")) is None else index.get(c) for r in run]
+        start = 0
+        while start < len(run):
+            fired = self.quality.record_many(
+                ys[start:],
+                guesses[start:],
+                sources=sources[start:],
+                served=served[start:],
+                times=times[start:],
+            )
+            if fired is None:
+                break
+            start += fired + 1
+            self.offset = first + learned[start - 1] + 1  # the offset the alarm fired at
+            self._log_drift()
+        applied = self.applied
+        for record, y in zip(run, ys, strict=True):
+            event_id = record.get("id")
+            if event_id is not None:
+                applied[event_id] = y
+        self.last_update = float(run[-1].get("time") or 0.0)
 
     def _applied_through(self, first: int, recs: Sequence[dict[str, Any]]) -> None:
         """After records from ``first`` are applied: keep their outcomes, wake their waiters."""
@@ -337,4 +402,4 @@ def _learn(
         return learner.update_batch(indptr, indices, values, ys), {}
     steps, before = learner.update_batch_explained(indptr, indices, values, ys)
     wanted = np.flatnonzero(steps.mistakes)[-keep:].tolist()
-    return steps, {j: before[:, indptr[j] : indptr[j + 1]] for j in wanted}
+    return steps, {j: before[:, indptr[j] : indptr[j + 1]].copy() for j in wanted}

@@ -12,6 +12,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+from collections.abc import Sequence
 from dataclasses import asdict, dataclass
 from numbers import Integral
 from typing import Any
@@ -79,6 +80,11 @@ def _rate(num: float, den: float) -> float | None:
 def _prf(tp: int, fp: int, fn: int) -> tuple[float | None, float | None, float | None]:
     """Precision, recall and F1 = 2tp / (2tp + fp + fn); None where nothing was counted."""
     return _rate(tp, tp + fp), _rate(tp, tp + fn), _rate(2 * tp, 2 * tp + fp + fn)
+
+
+def _all_indices(values: Sequence[Any], n: int) -> bool:
+    """Every value a plain int in [0, n): what `_index` takes without a second look."""
+    return not values or (set(map(type, values)) == {int} and min(values) >= 0 and max(values) < n)
 
 
 def _index(value: Any, n: int, path: str) -> int:
@@ -209,6 +215,99 @@ class Quality:
         if self.labelled % self.history_stride == 0:
             self._sample(time)
         return alarm
+
+    def record_many(
+        self,
+        truths: Sequence[int],
+        predicted: Sequence[int],
+        *,
+        sources: Sequence[str],
+        served: Sequence[int | None],
+        times: Sequence[float | None],
+    ) -> int | None:
+        """Count labels in order as :meth:`record` would each, stopping after the first one that
+        raises a drift alarm: its position, or None when every label was counted quietly.
+
+        One loop over local variables, written back wherever a reader looks (a history
+        sample, an alarm, the end), so the counters end bit-identical to :meth:`record`'s.
+        """
+        n = len(truths)
+        k = self.k
+        if not (
+            len(predicted) == len(sources) == len(served) == len(times) == n
+            and _all_indices(truths, k)
+            and _all_indices(predicted, k)
+            and _all_indices([s for s in served if s is not None], k)
+            and set(map(type, sources)) <= {str}
+        ):
+            for i in range(n):  # the exact error, after the labels before it are counted
+                kw = {"source": sources[i], "served": served[i], "time": times[i]}
+                if self.record(truths[i], predicted[i], **kw):
+                    return i
+            return None
+        binary, confusion, served_confusion = self.binary, self.confusion, self.served_confusion
+        ring, by_source = self.ring, self.by_source
+        size = len(ring)
+        windows = list(zip(self.windows, self.window_counts, strict=True))
+        decay, (dm, dn) = self._decay, self.decayed
+        labelled, mistakes = self.labelled, self.mistakes
+        served_labelled, served_mistakes = self.served_labelled, self.served_mistakes
+        p = self.drift
+        alpha, delta, min_samples, threshold = p.alpha, p.delta, p.min_samples, p.threshold
+        ph = self.ph
+        ph_n, mean, m, m_min, statistic = ph["n"], ph["mean"], ph["m"], ph["m_min"], ph["statistic"]
+        stride = self.history_stride
+        fired = None
+        for i in range(n):
+            truth, guess = truths[i], predicted[i]
+            mistake = truth != guess
+            t = labelled
+            labelled += 1
+            mistakes += mistake
+            confusion[truth][guess] += 1
+            code = 2 * truth + guess if binary else int(mistake)
+            for width, counts in windows:
+                if t >= width:
+                    counts[ring[(t - width) % size]] -= 1
+                counts[code] += 1
+            ring[t % size] = code
+            dm, dn = decay * dm + mistake, decay * dn + 1.0
+            shown = served[i]
+            if shown is not None:
+                served_labelled += 1
+                served_mistakes += truth != shown
+                served_confusion[truth][shown] += 1
+            counts = by_source.get(sources[i])
+            if counts is None:
+                source = sources[i] if len(by_source) < MAX_SOURCES else OTHER_SOURCE
+                counts = by_source.setdefault(source, [0, 0])
+            counts[0] += 1
+            counts[1] += mistake
+            # Page–Hinkley, as `_page_hinkley` computes it.
+            x = 1.0 if mistake else 0.0
+            ph_n += 1
+            mean += (x - mean) / ph_n
+            m = alpha * m + (x - mean - delta)
+            if m < m_min:
+                m_min = m
+            statistic = m - m_min
+            alarm = not (ph_n < min_samples or statistic <= threshold)
+            if alarm or labelled % stride == 0:
+                self.labelled, self.mistakes, self.decayed = labelled, mistakes, [dm, dn]
+                if alarm:
+                    self.alarms += 1
+                    self.alarm_at = [*self.alarm_at, labelled][-MAX_ALARMS_KEPT:]
+                    ph_n, mean, m, m_min, statistic = 0, 0.0, 0.0, 0.0, 0.0
+                    fired = i
+                if labelled % stride == 0:
+                    self._sample(times[i])
+                    stride = self.history_stride
+                if alarm:
+                    break
+        self.labelled, self.mistakes, self.decayed = labelled, mistakes, [dm, dn]
+        self.served_labelled, self.served_mistakes = served_labelled, served_mistakes
+        self.ph = {"n": ph_n, "mean": mean, "m": m, "m_min": m_min, "statistic": statistic}
+        return fired
 
     def _page_hinkley(self, x: float) -> bool:
         ph, p = self.ph, self.drift

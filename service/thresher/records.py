@@ -8,6 +8,8 @@ a later format can add some without breaking older readers; the six are always c
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
+from itertools import accumulate
 from typing import Any
 
 import msgpack
@@ -39,6 +41,37 @@ def decode(data: bytes) -> dict[str, Any]:
         raise CorruptRecord(f"label record is not valid msgpack: {exc}") from exc
     _check(record)
     return record  # type: ignore[no-any-return]
+
+
+def decode_many(payloads: Sequence[bytes]) -> tuple[list[dict[str, Any]], CorruptRecord | None]:
+    """Decode payloads as :func:`decode` would each: the records before the first corrupt
+    payload, and that payload's error (None when every payload is a record).
+
+    The payloads are unpacked as one stream. Past the first payload that is not exactly one
+    plainly shaped record it falls back to :func:`decode` on each, which names the fault.
+    """
+    blob = b"".join(payloads)
+    unpacker = msgpack.Unpacker(
+        raw=False, strict_map_key=True, use_list=True, max_buffer_size=max(1, len(blob))
+    )
+    unpacker.feed(blob)
+    tell, recs = unpacker.tell, []
+    append = recs.append
+    try:
+        # An object read past its payload's end shows in the stream position (msgpack holds
+        # no state between objects, so one that ends exactly there decodes alone the same).
+        for end, record in zip(accumulate(map(len, payloads)), unpacker, strict=False):
+            if tell() != end or type(record) is not dict or not _well_formed(record):
+                break
+            append(record)
+    except (msgpack.UnpackException, ValueError, TypeError):
+        pass
+    for payload in payloads[len(recs) :]:
+        try:
+            recs.append(decode(payload))
+        except CorruptRecord as exc:
+            return recs, exc
+    return recs, None
 
 
 def _check(record: Any) -> None:
