@@ -10,6 +10,7 @@ from __future__ import annotations
 import copy
 import itertools
 import logging
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -17,6 +18,8 @@ import pytest
 from thresher import records
 from thresher.demo_traffic import DEMO_MODEL, ListingTraffic
 from thresher.eventcache import EventCache
+from thresher.labellog import FileLog
+from thresher.lifecycle import replay
 from thresher.models import Model, ModelConfig
 
 RUN_SIZES = (1, 7, 556, 2, 2048, 3, 900, 64)
@@ -29,7 +32,7 @@ class _NoLog:
         return 0
 
 
-def _model(rule: str, classes: list[str]) -> Model:
+def _model(rule: str, classes: list[str], log: Any = None) -> Model:
     body: dict[str, Any] = dict(DEMO_MODEL, rule=rule, classes=classes)
     if rule == "margin":
         body["margin"] = 0.5
@@ -37,7 +40,7 @@ def _model(rule: str, classes: list[str]) -> Model:
         body["aggressiveness"] = 0.2
     model = Model(
         ModelConfig.from_json(body, created=0.0),
-        _NoLog(),  # type: ignore[arg-type]
+        log or _NoLog(),
         cache=EventCache(),
         apply_on_append=False,  # keeps per-offset outcomes, compared below
     )
@@ -184,3 +187,25 @@ def test_mistakes_explained_when_read_match_those_explained_at_once() -> None:
             reads += 1
     assert reads > 2 and list(batched.recent_mistakes) == list(one.recent_mistakes)
     assert all(entry["top"] for entry in batched.recent_mistakes)
+
+
+async def test_replay_reads_segments_in_lists_and_applies_chunks_as_one_at_a_time(
+    tmp_path: Path,
+) -> None:
+    recs = _records(3000, multi=False)
+    log = await FileLog.open(tmp_path / "log", segment_bytes=64 * 1024)  # several segments
+    for lo in range(0, len(recs), 250):
+        await log.append([records.encode(r) for r in recs[lo : lo + 250]])
+    assert log.segments > 3
+    one, replayed = (
+        _model("averaged", ["fine", "fraud"]),
+        _model("averaged", ["fine", "fraud"], log),
+    )
+    for offset, record in enumerate(copy.deepcopy(recs)):
+        one.apply(offset, record)
+    assert await replay(replayed, chunk=700) == len(recs)
+    assert replayed.offset == one.offset == len(recs)
+    assert replayed.digest() == one.digest() and replayed.applied == one.applied
+    assert replayed._outcomes == one._outcomes
+    assert list(replayed.recent_mistakes) == list(one.recent_mistakes)
+    await log.close()

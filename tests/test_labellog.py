@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import itertools
 import logging
 import os
 import re
@@ -17,7 +18,7 @@ import signal
 import struct
 import subprocess
 import zlib
-from collections.abc import Iterator
+from collections.abc import AsyncIterator, Iterator
 from pathlib import Path
 
 import msgpack
@@ -26,7 +27,7 @@ import pytest
 from conftest import IN_CI, _run, _unmount, mounted_tmpfs, require_binary
 from thresher import records
 from thresher.errors import LogUnavailable
-from thresher.labellog import CorruptLog, FileLog, LabelLog, OffsetOutOfRange
+from thresher.labellog import READ_BATCH, CorruptLog, FileLog, LabelLog, OffsetOutOfRange
 
 RECORD = {"id": "e1", "label": "fraud", "fields": {"title": "cheap", "price": 3.5},
           "source": "review", "served": "fine", "time": 1700000000.25}  # fmt: skip
@@ -209,9 +210,11 @@ async def test_rotation_sparse_index_and_trim(tmp_path: Path) -> None:
     assert all(os.path.getsize(tmp_path / "log" / n) <= 8192 for n in names)
     assert on_disk(tmp_path / "log") == expected
     # Reading from every start gives exactly the tail, whichever segment and index entry.
-    for start in (0, 1, 79, 80, 255, 256, 257, 513, 999):
+    for start in (0, 1, 79, 80, 255, 256, 257, 513, 999, 1000):
         got = await read_all(log, start)
         assert got == list(enumerate(expected))[start:], start
+        batches = [batch async for batch in log.read_batches(start)]
+        assert all(batches) and list(itertools.chain(*batches)) == expected[start:], start
     bases = [int(n[:20]) for n in names]
     await log.trim(bases[3] + 1)
     assert log.first() == bases[3]
@@ -225,6 +228,41 @@ async def test_rotation_sparse_index_and_trim(tmp_path: Path) -> None:
     assert (again.first(), again.head()) == (bases[-1], 1000)
     assert await again.append([b"next"]) == 1000
     await again.close()
+
+
+class _ListLog(LabelLog):
+    """A log in a list: only what `LabelLog` itself provides is under test."""
+
+    def __init__(self, payloads: list[bytes]) -> None:
+        self.payloads = payloads
+
+    async def append(self, payloads: list[bytes]) -> int:
+        self.payloads += payloads
+        return len(self.payloads) - len(payloads)
+
+    async def read(self, start: int) -> AsyncIterator[tuple[int, bytes]]:
+        for offset in range(start, len(self.payloads)):
+            yield offset, self.payloads[offset]
+
+    def head(self) -> int:
+        return len(self.payloads)
+
+    def first(self) -> int:
+        return 0
+
+    async def trim(self, below: int) -> None:
+        pass
+
+    async def close(self) -> None:
+        pass
+
+
+@pytest.mark.parametrize(("n", "start"), [(0, 0), (5, 2), (READ_BATCH, 0), (2 * READ_BATCH + 3, 1)])
+async def test_read_batches_of_any_log_are_its_reads_in_lists(n: int, start: int) -> None:
+    log = _ListLog([payload(i, 12) for i in range(n)])
+    batches = [batch async for batch in log.read_batches(start)]
+    assert all(0 < len(batch) <= READ_BATCH for batch in batches)
+    assert list(itertools.chain(*batches)) == [p for _, p in await read_all(log, start)]
 
 
 async def test_tiny_segments_hold_one_append_each(tmp_path: Path) -> None:

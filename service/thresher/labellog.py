@@ -58,6 +58,7 @@ __all__ = [
 ]
 
 READ_CHUNK = 1 << 20
+READ_BATCH = 1000  # payloads per list of the default `read_batches`
 
 _log = logging.getLogger("thresher.log")
 
@@ -76,6 +77,17 @@ class LabelLog(abc.ABC):
     @abc.abstractmethod
     def read(self, start: int) -> AsyncIterator[tuple[int, bytes]]:
         """Yield ``(offset, payload)`` from ``start`` up to the head as iteration begins."""
+
+    async def read_batches(self, start: int) -> AsyncIterator[list[bytes]]:
+        """The payloads `read` yields, a list at a time: for readers that apply them in runs."""
+        batch: list[bytes] = []
+        async for _, payload in self.read(start):
+            batch.append(payload)
+            if len(batch) == READ_BATCH:
+                yield batch
+                batch = []
+        if batch:
+            yield batch
 
     @abc.abstractmethod
     def head(self) -> int:
@@ -311,6 +323,14 @@ class FileLog(LabelLog):
 
     async def read(self, start: int) -> AsyncIterator[tuple[int, bytes]]:
         """Yield every record from ``start`` to the head as it was when reading began."""
+        offset = start
+        async for batch in self.read_batches(start):
+            for payload in batch:
+                yield offset, payload
+                offset += 1
+
+    async def read_batches(self, start: int) -> AsyncIterator[list[bytes]]:
+        """The records of `read`, as the lists each read of a segment file parses."""
         end = self.head()
         if not self.first() <= start <= end:
             raise OffsetOutOfRange(
@@ -324,9 +344,8 @@ class FileLog(LabelLog):
             base = self._bases[i]
             stop = min(end, self._bases[i + 1]) if i + 1 < len(self._bases) else end
             async for batch in self._segment(base, offset, stop):
-                for payload in batch:
-                    yield offset, payload
-                    offset += 1
+                yield batch
+                offset += len(batch)
 
     async def _segment(self, base: int, start: int, stop: int) -> AsyncIterator[list[bytes]]:
         """Batches of the records ``start..stop`` of one segment, every CRC checked."""

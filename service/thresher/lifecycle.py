@@ -269,12 +269,12 @@ async def replay(model: Model, *, chunk: int = REPLAY_CHUNK) -> int:
     """Apply the model's log from its offset to the head in batches of ``chunk``; the count."""
     count = 0
     payloads: list[bytes] = []
-    async for _, payload in model.log.read(model.offset):
-        payloads.append(payload)
-        if len(payloads) == chunk:
-            model.apply_payloads(model.offset, payloads)
-            count += len(payloads)
-            payloads = []
+    async for batch in model.log.read_batches(model.offset):
+        payloads += batch
+        while len(payloads) >= chunk:
+            model.apply_payloads(model.offset, payloads[:chunk])
+            count += chunk
+            del payloads[:chunk]
             await asyncio.sleep(0)  # let health checks and scoring through a long replay
     model.apply_payloads(model.offset, payloads)
     return count + len(payloads)

@@ -67,23 +67,25 @@ def parse_records(
     A ``None`` reason with fewer than ``count`` records means the buffer ran out.
     """
     out: list[bytes] = []
+    append, unpack, crc32 = out.append, FRAME.unpack_from, zlib.crc32  # a hot loop at open
     size = len(buf)
-    while len(out) < count:
+    mark = len(index) * SPARSE_EVERY - rel  # the record of ``out`` the index wants next
+    for number in range(count):
         if pos + 8 > size:
             return out, pos, None
-        length, crc = FRAME.unpack_from(buf, pos)
+        length, crc = unpack(buf, pos)
         if length == 0 or length > MAX_RECORD_BYTES:
             return out, pos, f"impossible record length {length}"
         stop = pos + 8 + length
         if stop > size:
             return out, pos, None
         payload = buf[pos + 8 : stop]
-        if zlib.crc32(payload) != crc:
+        if crc32(payload) != crc:
             return out, pos, "CRC-32 mismatch"
-        number = rel + len(out)
-        if number == len(index) * SPARSE_EVERY:
+        if number == mark:
             index.append(at + pos)
-        out.append(payload)
+            mark += SPARSE_EVERY
+        append(payload)
         pos = stop
     return out, pos, None
 
