@@ -6,9 +6,12 @@ demo's invented listings and model definition, and measures:
 
 - admission: labels/s the append script takes into one stream (batches of 100, 4 writers),
   beside the file log's group-committed appends (flush ``always``) on the same disk;
-- the stream alone: labels/s one reader gets through XREAD (batches of 1,000) and decoding;
-- catch-up: labels/s one replica applies from the stream (its follower: XREAD, decode,
-  ``Model.apply``), beside replaying the same records from the file log; target 50,000/s;
+- the stream alone: labels/s one reader gets through XREAD (batches of 1,000) and decoding
+  (``records.decode_many``, as the follower decodes); redis-py parses replies with hiredis
+  when it is installed (the ``redis``, ``test`` and ``bench`` extras install it);
+- catch-up: labels/s one replica applies from the stream (its follower: XREAD, then
+  ``Model.apply_payloads`` on runs of entries), beside replaying the same records from the file
+  log; target 50,000/s;
 - one replica over HTTP: labels/s ``thresher serve --log redis://`` acknowledges *and* applies
   (batches of 100, 4 clients), beside a file-log server under the same load;
 - label-to-visible: a replica process takes labels at ~1,000/s (10 per request, 100 requests/s
@@ -37,6 +40,7 @@ from typing import Any
 
 import aiohttp
 import redis
+from redis.utils import HIREDIS_AVAILABLE
 
 from thresher import records
 from thresher.demo_traffic import DEMO_MODEL, ListingTraffic
@@ -187,9 +191,10 @@ async def _storage_rows(state: RedisState, tmp: Path, n: int) -> list[Row]:
     while got < n:
         reply = await state.reader.xread({log.keys.stream: cursor}, count=1000)
         for _, entries in reply:
-            for entry_id, data in entries:
-                records.decode(data[b"d"])
-                cursor, got = entry_id, got + 1
+            decoded, error = records.decode_many([data[b"d"] for _, data in entries])
+            if error is not None:
+                raise error
+            cursor, got = entries[-1][0], got + len(decoded)
     read_s = time.perf_counter() - start
 
     model = _model(log)
@@ -209,7 +214,8 @@ async def _storage_rows(state: RedisState, tmp: Path, n: int) -> list[Row]:
     return [
         _row("stream admission, one stream (script, batches of 100, 4 writers)", n / admit_s,
              "labels/s", peer=n / append_s, peer_name="file log append, flush always"),
-        _row("stream read + decode, one reader (XREAD batches of 1,000)", n / read_s, "labels/s"),
+        _row("stream read + decode, one reader (XREAD batches of 1,000)", n / read_s, "labels/s",
+             note=f"reply parser: {'hiredis' if HIREDIS_AVAILABLE else 'pure Python'}"),
         _row("replica catch-up apply rate from the stream", rate, "labels/s",
              peer=n / replay_s, peer_name="replay from the file log", goal=(">=", CATCH_UP_TARGET),
              note="bound by Model.apply_batch (featurize, predict, update, quality), not Redis"),
