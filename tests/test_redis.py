@@ -28,6 +28,7 @@ from aiohttp.test_utils import TestServer
 from conftest import ServerProcess, free_port, require_binary
 from thresher.errors import LogUnavailable, NotFound
 from thresher.http import create_app
+from thresher.redislog import _labels_from
 from thresher.redisstate import RedisState
 from thresher.settings import Settings
 
@@ -526,3 +527,15 @@ async def test_append_script_is_atomic_dense_and_exactly_once(
             await dead.definitions()
         finally:
             await dead.close()
+
+
+def test_a_follower_takes_entries_whole_only_when_they_are_the_next_labels() -> None:
+    def entry(offset: int, field: bytes = b"d") -> tuple[bytes, dict[bytes, bytes]]:
+        return f"0-{offset + 1}".encode(), {field: b"x"}  # stream entry 0-n holds offset n-1
+
+    run = [entry(k) for k in range(5, 9)]
+    assert _labels_from(5, run)
+    assert not _labels_from(4, run) and not _labels_from(6, run)
+    assert not _labels_from(5, [*run[:2], *run[3:]])  # a gap (trimmed entries)
+    assert not _labels_from(5, [*run[:2], entry(7, b"c"), *run[3:]])  # a control record
+    assert not _labels_from(5, [])

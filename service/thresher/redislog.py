@@ -60,6 +60,19 @@ def _offset(entry_id: bytes) -> int:
     return int(entry_id.split(b"-", 1)[1]) - 1
 
 
+def _labels_from(offset: int, entries: list[Any]) -> bool:
+    """Whether ``entries`` are exactly the records from ``offset`` on, every one a label.
+
+    Entry ids only rise, so a first and last entry ``len - 1`` apart leave no gap between.
+    """
+    return (
+        bool(entries)
+        and _offset(entries[0][0]) == offset
+        and _offset(entries[-1][0]) == offset + len(entries) - 1
+        and all(b"d" in data for _, data in entries)
+    )
+
+
 def unavailable(exc: BaseException, what: str) -> LogUnavailable:
     return LogUnavailable(f"Redis is unreachable ({exc}); {what}", retry_after=RETRY_AFTER)
 
@@ -309,6 +322,15 @@ class RedisLog(LabelLog):
     async def _apply(self, model: Model, entries: list[Any], store: RedisSnapshots) -> None:
         """Apply the entries that continue the model's offset, YIELD_EVERY at a time."""
         await model.until_resumed()  # not while a snapshot is taking the weights
+        # The usual case, a chunk at a time: the next records, all labels, so no entry by entry
+        # checks; whatever else (a gap, a control record, a move while yielding) goes below.
+        while _labels_from(model.offset, chunk := entries[:YIELD_EVERY]):
+            self._apply_run(model, [data[b"d"] for _, data in chunk])
+            entries = entries[YIELD_EVERY:]
+            if not entries:
+                return
+            await asyncio.sleep(0)  # scoring and health checks between chunks of a catch-up
+            await model.until_resumed()
         payloads: list[bytes] = []
         for entry_id, data in entries:
             offset = _offset(entry_id)
