@@ -127,7 +127,8 @@ class Applying:
                 if given[k] is None:
                     given[k] = kept
         # A class list never changes, so only a foreign record has a label it lacks.
-        found = [self.class_index.get(record["label"]) for record in recs]
+        label_index = self.class_index.get
+        found = [label_index(record["label"]) for record in recs]
         excluded = self.exclude_sources
         if excluded or None in found:
             learned = [k for k, y in enumerate(found)
@@ -212,8 +213,8 @@ class Applying:
         guesses = predicted.tolist()
         sources = [record["source"] for record in run]
         times = [record.get("time") for record in run]
-        index = self.class_index
-        served = [None if (c := r.get("served")) is None else index.get(c) for r in run]
+        label_index = self.class_index.get
+        served = [None if (c := r.get("served")) is None else label_index(c) for r in run]
         start = 0
         while start < len(run):
             fired = self.quality.record_many(
