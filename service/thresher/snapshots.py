@@ -70,6 +70,7 @@ _NAME = re.compile(r"^(\d{12})\.snap$")
 _TEMP = re.compile(r"^\.(\d{12})\.snap\.tmp-(\d+)$")
 
 _log = logging.getLogger("thresher.snapshots")
+SYNC_EVERY = 8 << 20  # bytes of a snapshot written between fdatasync calls
 WRITE_SLICE = 1 << 22  # bytes hashed and written at a time
 
 
@@ -128,7 +129,7 @@ class SnapshotStore:
             path = self._path(generation)
             temp = self.directory / f".{path.name}.tmp-{os.getpid()}"
             try:
-                digest = hashlib.sha256()
+                digest, unsynced = hashlib.sha256(), 0
                 with open(temp, "wb") as handle:
                     for part in parts:
                         # Slices hashed just before they are written are still in the cache.
@@ -136,6 +137,14 @@ class SnapshotStore:
                         for lo in range(0, len(view), WRITE_SLICE):
                             digest.update(view[lo : lo + WRITE_SLICE])
                             handle.write(view[lo : lo + WRITE_SLICE])
+                            unsynced += len(view[lo : lo + WRITE_SLICE])
+                            if unsynced >= SYNC_EVERY:
+                                # The file system commits dirty data in order: a label log
+                                # fsync issued now would wait for all of this file too. Flushing
+                                # it in steps keeps each such wait short.
+                                handle.flush()
+                                os.fdatasync(handle.fileno())
+                                unsynced = 0
                     handle.write(digest.digest())
                     handle.flush()
                     os.fsync(handle.fileno())
