@@ -4,7 +4,9 @@ Pure: labels in, counters out; no I/O, no clocks (a record's time is passed in),
 Every label is scored by the model before it learns from it, so the running mistake rate is an
 honest estimate of the error on unseen data (progressive validation; Blum, Kalai & Langford,
 1999). Rolling windows keep the last ``n`` outcomes in one byte ring, each window updated in
-O(1) per record. Drift is a Page–Hinkley test (Page, 1954) for an increase of the mistake rate.
+O(1) per record. Drift is a Page–Hinkley test (Page, 1954) for an increase of the mistake rate,
+with the settings of :mod:`thresher.drift`. This module records and stores the counters;
+:mod:`thresher.quality_report` reads them (mistake rates, the report).
 """
 
 from __future__ import annotations
@@ -13,73 +15,18 @@ import hashlib
 import json
 import math
 from collections.abc import Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import asdict
 from numbers import Integral
 from typing import Any
 
+from .drift import DriftParams as DriftParams
 from .errors import InvalidConfig, InvalidInput
+from .quality_report import QualityReport
 
 STATE_FORMAT = 1
 MAX_ALARMS_KEPT = 100
 MAX_SOURCES = 1000
 OTHER_SOURCE = "(other)"  # where labels of sources past MAX_SOURCES are counted
-
-
-@dataclass(frozen=True)
-class DriftParams:
-    """Page–Hinkley test on the 0/1 mistake stream, tuned to catch a rising mistake rate.
-
-    With ``x_t`` the mistake indicator and ``mean_t`` the running mean of ``x_1..x_t`` since
-    the last reset, the test keeps ``m_t = alpha * m_{t-1} + (x_t - mean_t - delta)``,
-    ``M_t = min(0, m_1..m_t)`` and ``PH_t = m_t - M_t`` and alarms when ``PH_t > threshold``
-    after at least ``min_samples`` labels. An alarm resets the test (mean, m, M and the sample
-    count), so it re-learns the new mistake rate and can alarm again on a further rise.
-
-    Parameters
-    ----------
-    delta : float, default 0.005
-        Tolerated rise of the mistake rate per label before evidence accumulates.
-    threshold : float, default 50.0
-        Alarm level of ``PH_t``, in mistakes above the running mean.
-    min_samples : int, default 30
-        Labels needed after a reset before an alarm may fire.
-    alpha : float, default 0.998
-        Fading factor of ``m_t`` in (0, 1]; 1 is the classic test. Below 1 old evidence fades
-        (memory ~ 1 / (1 - alpha) = 500 labels), which keeps a steady noisy stream from
-        random-walking past the threshold. On generated streams: 5% -> 30% alarms after a
-        median of ~240 labels; a steady 10% stream of 20,000 labels alarmed in 0 of 300 runs,
-        a steady 30% one in 4 of 100.
-    """
-
-    delta: float = 0.005
-    threshold: float = 50.0
-    min_samples: int = 30
-    alpha: float = 0.998
-
-    def __post_init__(self) -> None:
-        for name in ("delta", "threshold", "alpha"):
-            value = getattr(self, name)
-            if isinstance(value, bool) or not isinstance(value, int | float):
-                raise InvalidConfig("must be a number", path=f"drift.{name}")
-            if not math.isfinite(value) or value < 0:
-                raise InvalidConfig("must be a finite number >= 0", path=f"drift.{name}")
-        if self.threshold <= 0:
-            raise InvalidConfig("must be > 0", path="drift.threshold")
-        if not 0 < self.alpha <= 1:
-            raise InvalidConfig("must lie in (0, 1]", path="drift.alpha")
-        if isinstance(self.min_samples, bool) or not isinstance(self.min_samples, int):
-            raise InvalidConfig("must be an integer", path="drift.min_samples")
-        if self.min_samples < 1:
-            raise InvalidConfig("must be >= 1", path="drift.min_samples")
-
-
-def _rate(num: float, den: float) -> float | None:
-    return num / den if den else None
-
-
-def _prf(tp: int, fp: int, fn: int) -> tuple[float | None, float | None, float | None]:
-    """Precision, recall and F1 = 2tp / (2tp + fp + fn); None where nothing was counted."""
-    return _rate(tp, tp + fp), _rate(tp, tp + fn), _rate(2 * tp, 2 * tp + fp + fn)
 
 
 def _all_indices(values: Sequence[Any], n: int) -> bool:
@@ -95,7 +42,7 @@ def _index(value: Any, n: int, path: str) -> int:
     return int(value)
 
 
-class Quality:
+class Quality(QualityReport):
     """Counters of one model's progressive and served predictions.
 
     Parameters
@@ -330,82 +277,6 @@ class Quality:
         if len(self.history) > self.history_max:
             self.history_stride *= 2
             self.history = [p for p in self.history if p["labelled"] % self.history_stride == 0]
-
-    # -- reading ---------------------------------------------------------------------------
-
-    def window_mistakes(self, i: int) -> int:
-        """Mistakes among the last ``windows[i]`` labels."""
-        counts = self.window_counts[i]
-        return counts[1] + counts[2] if self.binary else counts[1]
-
-    def mistake_rates(self) -> dict[str, float | None]:
-        """Mistake rate over all labels, each window and the decayed rate; None when empty."""
-        rates: dict[str, float | None] = {"all": _rate(self.mistakes, self.labelled)}
-        for i, n in enumerate(self.windows):
-            rates[f"last_{n}"] = _rate(self.window_mistakes(i), min(n, self.labelled))
-        rates["decayed"] = _rate(self.decayed[0], self.decayed[1])
-        return rates
-
-    def _binary_scores(self) -> dict[str, dict[str, float | None]]:
-        (_, fp), (fn, tp) = self.confusion
-        sets = [("all", (tp, fp, fn))]
-        for n, c in zip(self.windows, self.window_counts, strict=True):
-            sets.append((f"last_{n}", (c[3], c[1], c[2])))
-        out: dict[str, dict[str, float | None]] = {"precision": {}, "recall": {}, "f1": {}}
-        for name, (tp_, fp_, fn_) in sets:
-            p, r, f = _prf(tp_, fp_, fn_)
-            out["precision"][name], out["recall"][name], out["f1"][name] = p, r, f
-        return out
-
-    def _per_class(self) -> dict[str, dict[str, Any]]:
-        out: dict[str, dict[str, Any]] = {}
-        for j, name in enumerate(self.classes):
-            tp = self.confusion[j][j]
-            row = sum(self.confusion[j])
-            col = sum(self.confusion[i][j] for i in range(self.k))
-            p, r, f = _prf(tp, col - tp, row - tp)
-            out[name] = {"precision": p, "recall": r, "f1": f, "support": row}
-        return out
-
-    def report(self) -> dict[str, Any]:
-        """The JSON-ready quality report (rates are None until something was counted)."""
-        report: dict[str, Any] = {
-            "classes": list(self.classes),
-            "windows": list(self.windows),
-            "labelled": self.labelled,
-            "mistakes": self.mistakes,
-            "mistake_rate": self.mistake_rates(),
-            "served": {
-                "labelled": self.served_labelled,
-                "mistakes": self.served_mistakes,
-                "mistake_rate": _rate(self.served_mistakes, self.served_labelled),
-                "confusion": {
-                    "classes": list(self.classes),
-                    "truth_by_predicted": [list(r) for r in self.served_confusion],
-                },
-            },
-            "confusion": {
-                "classes": list(self.classes),
-                "truth_by_predicted": [list(r) for r in self.confusion],
-            },
-            "by_source": {s: c[0] for s, c in sorted(self.by_source.items())},
-            "by_source_mistakes": {s: c[1] for s, c in sorted(self.by_source.items())},
-            "drift": {
-                "statistic": self.ph["statistic"],
-                "threshold": self.drift.threshold,
-                "alarms": self.alarms,
-                "alarm_at": list(self.alarm_at),
-                "params": asdict(self.drift),
-            },
-            "history": [dict(p) for p in self.history],
-        }
-        if self.binary:
-            report["false_positives"] = self.confusion[0][1]
-            report["false_negatives"] = self.confusion[1][0]
-            report.update(self._binary_scores())
-        else:
-            report["per_class"] = self._per_class()
-        return report
 
     # -- state -----------------------------------------------------------------------------
 
