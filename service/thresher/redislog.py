@@ -142,9 +142,20 @@ class RedisLog(LabelLog):
     async def read(self, start: int) -> AsyncIterator[tuple[int, bytes]]:
         """Yield every record from ``start`` to the head as it was when reading began."""
         await self.refresh()
-        end, cursor = self._head, start
+        end = self._head
         if not self._first <= start <= end:
             raise OffsetOutOfRange(f"offset {start} is outside the stream ({self._first}..{end})")
+        async for cursor, data in self.entries(start, end):
+            if b"d" not in data:
+                raise RuntimeError(
+                    f"offset {cursor} of model {self.name!r} is a restore or rebuild, not a "
+                    "label; apply the stream with catch_up"
+                )
+            yield cursor, data[b"d"]
+
+    async def entries(self, start: int, end: int) -> AsyncIterator[tuple[int, Any]]:
+        """The raw stream entries (offset, fields) from ``start`` to ``end`` (exclusive)."""
+        cursor = start
         while cursor < end:
             try:
                 batch = await self.state.client.xrange(
@@ -158,12 +169,7 @@ class RedisLog(LabelLog):
             for entry_id, data in batch:
                 if _offset(entry_id) != cursor:
                     raise OffsetOutOfRange(f"offset {cursor} is no longer in the stream")
-                if b"d" not in data:
-                    raise RuntimeError(
-                        f"offset {cursor} of model {self.name!r} is a restore or rebuild, not a "
-                        "label; apply the stream with catch_up"
-                    )
-                yield cursor, data[b"d"]
+                yield cursor, data
                 cursor += 1
 
     async def trim(self, below: int) -> None:
@@ -292,15 +298,13 @@ class RedisLog(LabelLog):
 
     async def catch_up(self, model: Model, store: RedisSnapshots) -> int:
         """Apply the stream from the model's offset to the head as read now; the count."""
-        from .redisswitch import entries
-
         await self.refresh()
         start, end = model.offset, self._head
         if not self._first <= start <= end:
             raise OffsetOutOfRange(f"offset {start} is outside the stream ({self._first}..{end})")
         while model.offset < end:
             before, run = model.offset, []
-            async for offset, data in entries(self, model.offset, end):
+            async for offset, data in self.entries(model.offset, end):
                 run.append((_sid(offset).encode(), data))
                 if len(run) == READ_BATCH:
                     break

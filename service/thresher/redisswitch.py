@@ -23,7 +23,7 @@ from __future__ import annotations
 import asyncio
 import logging
 import secrets
-from collections.abc import AsyncIterator, Sequence
+from collections.abc import Sequence
 from typing import TYPE_CHECKING, Any
 
 import msgpack
@@ -31,7 +31,7 @@ import msgpack
 from . import records
 from .errors import Conflict, NotFound, Unavailable
 from .labellog import OffsetOutOfRange
-from .redislog import FAILURES, _offset, _sid, unavailable
+from .redislog import FAILURES, unavailable
 from .snapshots import CorruptSnapshot
 
 if TYPE_CHECKING:
@@ -41,7 +41,7 @@ if TYPE_CHECKING:
 
 FREEZE_MS = 60_000  # labels are refused at most this long if a replica dies mid-request
 APPLY_TIMEOUT = 30.0  # seconds the requesting replica waits for its follower to switch
-READ, STAGE, REPLAY = 2000, 1000, 2048  # entries per XRANGE, ids per HSET, labels per batch
+STAGE, REPLAY = 1000, 2048  # ids per HSET, labels per batch
 ADMITTED, TRIMMED, GONE, FROZEN = 0, 1, 2, 3  # the first element of the script's answer
 
 _log = logging.getLogger("thresher.redis")
@@ -182,26 +182,6 @@ async def apply(
     _log.info("model %s: %s applied at offset %d", log.name, kind, offset)
 
 
-async def entries(log: RedisLog, start: int, end: int) -> AsyncIterator[tuple[int, Any]]:
-    """The raw stream entries (offset, fields) from ``start`` to ``end`` (exclusive)."""
-    cursor = start
-    while cursor < end:
-        try:
-            batch = await log.state.client.xrange(
-                log.keys.stream, min=_sid(cursor), max=_sid(end - 1), count=READ
-            )
-        except FAILURES as exc:
-            log.state.failed(exc)
-            raise unavailable(exc, "the stream could not be read") from exc
-        if not batch:
-            raise OffsetOutOfRange(f"offset {cursor} is no longer in the stream")
-        for entry_id, data in batch:
-            if _offset(entry_id) != cursor:
-                raise OffsetOutOfRange(f"offset {cursor} is no longer in the stream")
-            yield cursor, data
-            cursor += 1
-
-
 async def _target(
     log: RedisLog, store: RedisSnapshots, control: dict[str, Any], classes: Sequence[str]
 ) -> tuple[dict[str, str], list[str], int]:
@@ -217,7 +197,7 @@ async def _target(
     if log.first() > start:
         raise _trimmed(log.name, log.first())
     known = set(classes)
-    async for _, data in entries(log, start, log.head()):
+    async for _, data in log.entries(start, log.head()):
         payload = data.get(b"d")
         if payload is None:
             continue  # an earlier restore or rebuild: a rebuild replays labels only
@@ -240,7 +220,7 @@ async def _rebuilt(
         fresh.load_state(await asyncio.to_thread(store.load, int(control["generation"])))
     fresh.exclude_sources = frozenset(control["exclude_sources"])
     payloads: list[bytes] = []
-    async for _, data in entries(log, fresh.offset, offset):
+    async for _, data in log.entries(fresh.offset, offset):
         payload = data.get(b"d")
         if payload is not None:
             payloads.append(payload)
