@@ -107,8 +107,10 @@ static int batch_hold(Batch *b, PyObject *w, PyObject *u, Py_ssize_t rows, PyObj
     return 0;
 }
 
-/* Row i's margins into m[rows]: training weights, or served ones when u is given. */
-static void row_margins(const Batch *b, Py_ssize_t i, const float *u, double c, double *m) {
+/* Row i's margins into m[rows]: training weights, or served ones when u is given. With kept,
+ * also each weight used, at kept[r * nnz + k] (learner_kernels.served_weights' layout). */
+static void row_margins(const Batch *b, Py_ssize_t i, const float *u, double c, double *m,
+                        double *kept) {
     const float *w = b->w.view.buf;
     int64_t lo = b->pp[i], hi = b->pp[i + 1], k;
     Py_ssize_t r;
@@ -118,6 +120,7 @@ static void row_margins(const Batch *b, Py_ssize_t i, const float *u, double c, 
         for (k = lo; k < hi; k++) {
             double weight = (double)wr[b->ip[k]];
             if (ur) weight = weight - (double)ur[b->ip[k]] / c;
+            if (kept) kept[r * b->nnz + k] = weight;
             sum += weight * value_at(b, k);
         }
         m[r] = sum;
@@ -170,7 +173,7 @@ static PyObject *margins(PyObject *self, PyObject *args) {
         double c = seen > 1.0 ? seen : 1.0; /* c = 0 only before the first example: u = 0 */
         const float *up = b.u.ok ? b.u.view.buf : NULL;
         for (i = 0; i < b.n; i++) {
-            row_margins(&b, i, up, c, mp + i * rows);
+            row_margins(&b, i, up, c, mp + i * rows, NULL);
             lp[i] = label_of(mp + i * rows, rows);
         }
         out = PyTuple_Pack(2, labels, sums);
@@ -231,23 +234,11 @@ static PyObject *learn(PyObject *self, PyObject *args) {
     for (i = 0; i < b.n; i++, seen += 1.0) {
         int64_t y = b.yp[i], lo = b.pp[i], hi = b.pp[i + 1], k;
         double *m = sv + i * rows, c = seen;
-        row_margins(&b, i, NULL, 1.0, train);
-        if (b.u.ok) row_margins(&b, i, b.u.view.buf, c > 1.0 ? c : 1.0, m);
+        /* bp keeps the served weights: the averaged ones, or the training ones themselves */
+        row_margins(&b, i, NULL, 1.0, train, b.u.ok ? NULL : bp);
+        if (b.u.ok) row_margins(&b, i, b.u.view.buf, c > 1.0 ? c : 1.0, m, bp);
         else memcpy(m, train, (size_t)rows * sizeof(double));
         pred[i] = label_of(m, rows);
-        if (bp != NULL) { /* served weights, as learner_kernels.served_weights gathers them */
-            const float *wf = b.w.view.buf, *uf = b.u.ok ? b.u.view.buf : NULL;
-            double cc = c > 1.0 ? c : 1.0;
-            Py_ssize_t r;
-            for (r = 0; r < rows; r++) {
-                for (k = lo; k < hi; k++) {
-                    int64_t j = r * b.dim + b.ip[k];
-                    double weight = (double)wf[j];
-                    if (uf) weight = weight - (double)uf[j] / cc;
-                    bp[r * b.nnz + k] = weight;
-                }
-            }
-        }
         double sq = 0.0;
         if (rule == PASSIVE_AGGRESSIVE) {
             for (k = lo; k < hi; k++) sq += value_at(&b, k) * value_at(&b, k);

@@ -114,13 +114,11 @@ class Featurizer:
     def _compile(self) -> Any:
         """The spec as a compiled plan: fields in spec order, crosses as field indices."""
         spec, order = self.spec, {name: i for i, name in enumerate(self.spec.fields)}
-        crossed = {name for cross in spec.crosses for name in cross}
         fields = []
-        for name, fs in spec.fields.items():
+        for (name, _, _, cross), fs in zip(self._plan, spec.fields.values(), strict=True):
             kind = {"categorical": 0, "text": 1, "set": 4}.get(fs.kind)
             if kind is None:
                 kind = 2 if fs.buckets is None else 3
-            cross = 0 if name not in crossed else self._mode(fs)
             fields.append((name, kind, cross, fs.ngrams, fs.char_ngrams, fs.log1p, fs.clip,
                            fs.buckets))  # fmt: skip
         hasher = self.hasher

@@ -135,9 +135,10 @@ class SnapshotStore:
                         # Slices hashed just before they are written are still in the cache.
                         view = memoryview(part)
                         for lo in range(0, len(view), WRITE_SLICE):
-                            digest.update(view[lo : lo + WRITE_SLICE])
-                            handle.write(view[lo : lo + WRITE_SLICE])
-                            unsynced += len(view[lo : lo + WRITE_SLICE])
+                            piece = view[lo : lo + WRITE_SLICE]
+                            digest.update(piece)
+                            handle.write(piece)
+                            unsynced += len(piece)
                             if unsynced >= SYNC_EVERY:
                                 # The file system commits dirty data in order: a label log
                                 # fsync issued now would wait for all of this file too. Flushing
