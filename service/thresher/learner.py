@@ -27,12 +27,11 @@ update is decided by the training vector ``w``, as in the published algorithm.
 
 from __future__ import annotations
 
-import hashlib
-import math
 from typing import Any, NamedTuple
 
 import numpy as np
 
+from . import learner_state
 from .errors import InvalidConfig, InvalidInput
 from .learner_kernels import (
     apply_update,
@@ -48,6 +47,9 @@ from .learner_kernels import (
     served_weights,
     train_margins,
 )
+from .learner_state import STATE_FORMAT as STATE_FORMAT
+from .learner_state import integer_in as _integer
+from .learner_state import number as _number
 
 try:  # the compiled kernels (_learner.c); the numpy kernels are their reference
     from . import _learner
@@ -56,7 +58,6 @@ except ImportError:  # pragma: no cover - a source checkout that was never built
 
 RULES = ("classic", "margin", "averaged", "passive_aggressive")
 _RULE_CODES = {rule: code for code, rule in enumerate(RULES)}  # as the enum in _learner.c
-STATE_FORMAT = 1
 MAX_BITS = 30
 MAX_SLOTS = 1 << 28  # rows * 2**bits float32 weights: 1 GiB
 MAX_CLASSES = 4096
@@ -79,23 +80,6 @@ class BatchUpdate(NamedTuple):
     mistakes: np.ndarray
     margins: np.ndarray
     updated: np.ndarray
-
-
-def _number(value: Any, path: str) -> float:
-    if isinstance(value, bool) or not isinstance(value, int | float | np.integer | np.floating):
-        raise InvalidConfig(f"must be a number, got {type(value).__name__}", path=path)
-    number = float(value)
-    if not math.isfinite(number):
-        raise InvalidConfig("must be a finite number", path=path)
-    return number
-
-
-def _integer(value: Any, path: str, lo: int, hi: int) -> int:
-    if isinstance(value, bool) or not isinstance(value, int | np.integer):
-        raise InvalidConfig(f"must be an integer, got {type(value).__name__}", path=path)
-    if not lo <= int(value) <= hi:
-        raise InvalidConfig(f"must be between {lo} and {hi}, got {int(value)}", path=path)
-    return int(value)
 
 
 class Learner:
@@ -388,20 +372,7 @@ class Learner:
 
     def state(self) -> dict[str, Any]:
         """Config, counters and the live arrays (copy them before writing from a thread)."""
-        state: dict[str, Any] = {
-            "format": STATE_FORMAT,
-            "n_classes": self.n_classes,
-            "bits": self.bits,
-            "rule": self.rule,
-            "margin": self.margin,
-            "aggressiveness": self.aggressiveness,
-            "updates": self.updates,
-            "seen": self.seen,
-            "weights": self.weights_,
-        }
-        if self.accum_ is not None:
-            state["accum"] = self.accum_
-        return state
+        return learner_state.state_of(self)
 
     @classmethod
     def from_state(cls, state: dict[str, Any], *, copy: bool = True) -> Learner:
@@ -410,39 +381,8 @@ class Learner:
         With ``copy=False`` arrays that are already C-ordered and writable are adopted as they
         are (a freshly decoded snapshot's), so loading does not hold the weights twice.
         """
-        if not isinstance(state, dict) or state.get("format") != STATE_FORMAT:
-            raise InvalidConfig(f"learner state format must be {STATE_FORMAT}", path="format")
-        try:
-            learner = cls(
-                state["n_classes"],
-                state["bits"],
-                rule=state["rule"],
-                margin=state["margin"],
-                aggressiveness=state["aggressiveness"],
-            )
-        except KeyError as missing:
-            raise InvalidConfig("missing from learner state", path=str(missing.args[0])) from None
-        learner.updates = _integer(state.get("updates"), "updates", 0, 2**63 - 1)
-        learner.seen = _integer(state.get("seen"), "seen", 0, 2**63 - 1)
-        shape = learner.weights_.shape
-        for key in ("weights", "accum") if learner.accum_ is not None else ("weights",):
-            arr = state.get(key)
-            if not isinstance(arr, np.ndarray) or arr.dtype != np.float32 or arr.shape != shape:
-                raise InvalidConfig(f"must be a float32 array of shape {shape}", path=key)
-            if copy or not (arr.flags.c_contiguous and arr.flags.writeable):
-                arr = np.array(arr, dtype=np.float32, order="C")
-            setattr(learner, f"{key}_", arr)
-        return learner
+        return learner_state.rebuild(cls, state, copy=copy)
 
     def digest(self) -> str:
         """Hex SHA-256 of config, counters and array bytes; equal means bit-identical."""
-        h = hashlib.sha256()
-        header = (
-            f"thresher-learner/{STATE_FORMAT}|{self.n_classes}|{self.bits}|{self.rule}|"
-            f"{self.margin.hex()}|{self.aggressiveness.hex()}|{self.updates}|{self.seen}|"
-        )
-        h.update(header.encode())
-        for arr in (self.weights_, self.accum_):
-            if arr is not None:
-                h.update(memoryview(np.ascontiguousarray(arr, dtype="<f4")).cast("B"))
-        return h.hexdigest()
+        return learner_state.digest_of(self)
