@@ -70,6 +70,9 @@ def test_demo_shows_the_drift_alarm_and_the_recovery(tmp_path: Path) -> None:
     assert "Traceback" not in err and time.monotonic() - started < 40
     assert f"http://127.0.0.1:{port}/" in out.splitlines()[0]
     assert f"data left in {data_dir}" in out
+    # The alarm is told in words on the console, at the label the snapshot records below.
+    alarm_lines = [line for line in err.splitlines() if "drift alarm" in line]
+    assert alarm_lines and all("{" not in line for line in alarm_lines), err
 
     # The service left a verifiable snapshot with everything that was labelled.
     store = SnapshotStore(data_dir / "models" / "listings" / "snapshots")
@@ -83,6 +86,7 @@ def test_demo_shows_the_drift_alarm_and_the_recovery(tmp_path: Path) -> None:
 
     # The alarm: none before the shift, at least one within 1,500 labels after it.
     assert all(at > SHIFT_AT for at in final.alarm_at), final.alarm_at
+    assert f"drift alarm on model 'listings' at label {final.alarm_at[0]:,}:" in alarm_lines[0]
     assert any(SHIFT_AT < at <= SHIFT_AT + 1500 for at in final.alarm_at), final.alarm_at
     assert all(alarms == 0 for labelled, _, alarms in samples if labelled <= SHIFT_AT)
     assert any(alarms >= 1 for labelled, _, alarms in samples if labelled > SHIFT_AT)
