@@ -213,7 +213,12 @@ class ModelRegistry(Snapshotting):
             max_entries=s.cache_entries, max_bytes=s.cache_bytes, ttl_seconds=s.cache_ttl
         )
         model = Model(
-            config, log, cache=cache, max_fields=s.max_fields, apply_on_append=self.shared is None
+            config,
+            log,
+            cache=cache,
+            max_fields=s.max_fields,
+            apply_on_append=self.shared is None,
+            applied_window=s.applied_window or None,
         )
         self.stores[config.name] = store
         loaded = await asyncio.to_thread(store.load_newest)

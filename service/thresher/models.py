@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 
+from .appliedids import AppliedIds
 from .applying import RECENT_MISTAKES
 from .errors import InvalidConfig, InvalidEvent, Unavailable
 from .eventcache import EventCache
@@ -33,13 +34,26 @@ from .snapshot_format import Sparse, capture
 
 __all__ = ["RULES", "LabelAck", "Model", "ModelConfig", "SharedLog"]
 
-STATE_FORMAT = 1
+STATE_FORMAT = 2  # 2: the applied ids as `AppliedIds` arrays; 1 (still read): an id -> class map
 EXPLAIN_MAX = 50
 
 
-def _capture_all(arrays: dict[str, np.ndarray]) -> dict[str, np.ndarray | Sparse]:
-    """Each array as a snapshot stores it; runs in a worker thread while applying is held."""
+def _capture_all(
+    arrays: dict[str, np.ndarray], tables: list[dict[str, Any]]
+) -> dict[str, np.ndarray | Sparse]:
+    """Each array as a snapshot stores it; runs in a worker thread while applying is held.
+
+    The applied-id ``tables`` are copied in place (their arrays replaced by the copies).
+    """
+    for table in tables:
+        for key in ("h1", "h2", "cls"):
+            table[key] = capture(table[key])
     return {key: capture(array) for key, array in arrays.items()}
+
+
+def _applied_arrays(state: dict[str, Any]) -> list[dict[str, Any]]:
+    """The applied-id tables of a :meth:`Model._state`, whose arrays are live."""
+    return state["applied"]["tables"]  # type: ignore[no-any-return]
 
 
 class Model(Labelling):
@@ -53,8 +67,11 @@ class Model(Labelling):
         cache: EventCache,
         max_fields: int = 1000,
         apply_on_append: bool = True,
+        applied_window: int | None = None,
     ) -> None:
         self.config = config
+        # Ids kept for exactly-once training: the last N to 2N applied ids, or all when None.
+        self.applied_window = applied_window
         self.log = log
         self.cache = cache
         self.max_fields = max_fields
@@ -98,7 +115,7 @@ class Model(Labelling):
         self.quality = Quality(list(self.config.classes))
         self._weights_digest: tuple[tuple[int, int, int], str] | None = None
         self._nonzero: tuple[tuple[int, int, int], int] | None = None
-        self.applied: dict[str, int] = {}
+        self.applied = AppliedIds(self.applied_window)
         self.offset = 0
 
     @property
@@ -203,6 +220,9 @@ class Model(Labelling):
         for key, value in state["learner"].items():
             if isinstance(value, np.ndarray):
                 state["learner"][key] = value.copy()
+        for table in _applied_arrays(state):
+            for key in ("h1", "h2", "cls"):
+                table[key] = table[key].copy()
         return state
 
     async def capture(self) -> dict[str, Any]:
@@ -210,14 +230,15 @@ class Model(Labelling):
 
         Label application is held while a worker thread takes the arrays slice by slice, as
         the snapshot will store them (a mostly-zero array as its nonzero elements, never
-        copied whole); labels are still appended to the log meanwhile and applied after.
+        copied whole), the applied-id tables among them; labels are still appended to the log
+        meanwhile and applied after.
         """
         self.hold()
         try:
             state, learner = self._state(), self.learner
             live = state["learner"]
             arrays = {k: v for k, v in live.items() if isinstance(v, np.ndarray)}
-            live.update(await asyncio.to_thread(_capture_all, arrays))
+            live.update(await asyncio.to_thread(_capture_all, arrays, _applied_arrays(state)))
             if self.learner is not learner or self.offset != state["offset"]:
                 raise Unavailable(
                     f"model {self.name!r} changed state while a snapshot was taken; retry",
@@ -251,7 +272,7 @@ class Model(Labelling):
             "offset": self.offset,
             "learner": self.learner.state(),
             "quality": self.quality.state(),
-            "applied": dict(self.applied),
+            "applied": self.applied.state(),
             "excluded": sorted(self.exclude_sources),
             "scored": self.scored,
             "duplicates": self.duplicates,
@@ -260,12 +281,16 @@ class Model(Labelling):
 
     def load_state(self, state: Mapping[str, Any]) -> None:
         """Replace the learned state with a snapshot's; its arrays are taken over, not copied."""
-        if state.get("format") != STATE_FORMAT:
+        if state.get("format") not in (1, STATE_FORMAT):
             raise InvalidConfig(f"snapshot format {state.get('format')!r} is not supported")
         self.learner = Learner.from_state(state["learner"], copy=False)
         self._weights_digest = self._nonzero = None
         self.quality = Quality.from_state(state["quality"])
-        self.applied = {str(k): int(v) for k, v in state["applied"].items()}
+        if state["format"] == 1:  # written before the applied ids were kept as arrays
+            pairs = ((str(k), int(v)) for k, v in state["applied"].items())
+            self.applied = AppliedIds.from_pairs(pairs, window=self.applied_window)
+        else:
+            self.applied = AppliedIds.from_state(state["applied"], window=self.applied_window)
         self.offset = int(state["offset"])
         self.exclude_sources = frozenset(state.get("excluded", ()))
         self.scored = int(state.get("scored", 0))
@@ -280,6 +305,7 @@ class Model(Labelling):
             cache=self.cache,
             max_fields=self.max_fields,
             apply_on_append=self.apply_on_append,
+            applied_window=self.applied_window,
         )
 
     def adopt(self, other: Model) -> None:
