@@ -328,6 +328,17 @@ class AppliedIds:
         ids._keep(whole.current)
         return ids
 
+    @classmethod
+    def from_snapshot(
+        cls, applied: Any, state_format: int, *, window: int | None = None
+    ) -> AppliedIds:
+        """The index in a model snapshot of ``state_format`` 2 (arrays) or 1 (an id map)."""
+        if state_format == 1:
+            if not isinstance(applied, Mapping):
+                raise CorruptSnapshot("snapshot holds applied ids that are not a map")
+            return cls.from_pairs(((str(k), int(v)) for k, v in applied.items()), window=window)
+        return cls.from_state(applied, window=window)
+
     def _keep(self, table: IdTable) -> None:
         """Hold ``table``'s ids: as the only table unbounded, else as the previous generation."""
         if self.window is None:

@@ -292,7 +292,10 @@ def _shared_state(settings: Settings) -> RedisState | None:
     from .redisstate import RedisState
 
     return RedisState(
-        settings.log, wait_replicas=settings.redis_wait_replicas, event_ttl=settings.cache_ttl
+        settings.log,
+        wait_replicas=settings.redis_wait_replicas,
+        event_ttl=settings.cache_ttl,
+        applied_window=settings.applied_window,
     )
 
 

@@ -286,11 +286,9 @@ class Model(Labelling):
         self.learner = Learner.from_state(state["learner"], copy=False)
         self._weights_digest = self._nonzero = None
         self.quality = Quality.from_state(state["quality"])
-        if state["format"] == 1:  # written before the applied ids were kept as arrays
-            pairs = ((str(k), int(v)) for k, v in state["applied"].items())
-            self.applied = AppliedIds.from_pairs(pairs, window=self.applied_window)
-        else:
-            self.applied = AppliedIds.from_state(state["applied"], window=self.applied_window)
+        self.applied = AppliedIds.from_snapshot(
+            state["applied"], state["format"], window=self.applied_window
+        )
         self.offset = int(state["offset"])
         self.exclude_sources = frozenset(state.get("excluded", ()))
         self.scored = int(state.get("scored", 0))
