@@ -66,17 +66,34 @@ def test_answers_as_a_dict_within_its_window(
         ids["never set"]
 
 
-@settings(max_examples=50, deadline=None)
-@given(OPS, st.sampled_from([None, 2, 17]))
+@settings(max_examples=80, deadline=None)
+@given(OPS, st.sampled_from([None, 2, 17]), st.integers(0, 300))
 def test_the_compiled_path_leaves_the_reference_arrays(
-    ops: list[tuple[str, int]], window: int | None
+    ops: list[tuple[str, int]], window: int | None, split: int
 ) -> None:
-    native, reference = AppliedIds(window), AppliedIds(window, native=False)
+    native, batched = AppliedIds(window), AppliedIds(window)
+    reference = AppliedIds(window, native=False)
     for event_id, y in ops:
         native[event_id] = y
         reference[event_id] = y
         assert native.get(event_id) == reference.get(event_id) == y
-    assert _arrays(native) == _arrays(reference)
+    # update() puts runs of pairs in one compiled call, stopping to rotate or grow.
+    batched.update(ops[:split])
+    batched.update(iter(ops[split:]))
+    assert _arrays(native) == _arrays(reference) == _arrays(batched)
+    assert native.shadowed == reference.shadowed == batched.shadowed
+
+
+def test_update_hands_what_it_cannot_take_to_the_reference() -> None:
+    ids = AppliedIds(3)
+    ids.update([("a", 1), ("\ud800", 2), ("b", 0), ("c", 1), ("d", 0)])
+    assert [ids.get(k) for k in ("a", "\ud800", "b", "c", "d")] == [1, 2, 0, 1, 0]
+    assert ids.current.count == 2 and ids.previous is not None and ids.previous.count == 3
+    with pytest.raises(TypeError, match="must be a str"):
+        ids.update([("e", 1), (7, 1)])  # type: ignore[list-item]
+    with pytest.raises(ValueError, match="class index"):
+        ids.update([("f", -1)])
+    assert ids.get("e") == 1 and "f" not in ids
 
 
 def test_growth_and_collisions_match_the_reference() -> None:
@@ -84,7 +101,8 @@ def test_growth_and_collisions_match_the_reference() -> None:
     keys = [f"event-{i}" for i in range(3 * appliedids.MIN_CAPACITY)]
     native, reference = AppliedIds(), AppliedIds(native=False)
     native.update((k, i % 5) for i, k in enumerate(keys))
-    reference.update((k, i % 5) for i, k in enumerate(keys))
+    for i, k in enumerate(keys):
+        reference[k] = i % 5
     assert native.current.capacity == reference.current.capacity == 4 * appliedids.MIN_CAPACITY
     assert _arrays(native) == _arrays(reference) and len(native) == len(keys)
     assert all(native.get(k) == i % 5 for i, k in enumerate(keys))

@@ -1,4 +1,4 @@
-/* thresher._appliedids: the compiled fast path of appliedids.IdTable's find, put and grow.
+/* thresher._appliedids: the compiled fast path of appliedids.IdTable's hash, find, put, grow.
  *
  * PURE: reads the table arrays it is handed and writes them only in `put` and `rehash`. An id
  * is hashed as MurmurHash3_x64_128 (seed 0) of its UTF-8 bytes, giving (h1, h2); its home slot
@@ -166,46 +166,139 @@ static PyObject *py_hash128(PyObject *self, PyObject *key) {
     return Py_BuildValue("(KK)", (unsigned long long)h1, (unsigned long long)h2);
 }
 
-/* find(h1s, h2s, cls, key) -> class index, -1 when absent, or None (the reference answers) */
-static PyObject *py_find(PyObject *self, PyObject *args) {
-    PyObject *a1, *a2, *ac, *key;
-    if (!PyArg_ParseTuple(args, "OOOO", &a1, &a2, &ac, &key)) return NULL;
-    uint64_t h1, h2;
-    if (hash_key(key, &h1, &h2)) Py_RETURN_NONE;
+/* Table(h1s, h2s, cls): one table's arrays, held for the object's life so that each find or
+ * put skips taking three buffers (most of a call's cost). TypeError when they do not fit;
+ * appliedids then uses the reference. */
+typedef struct {
+    PyObject_HEAD
     Table t;
-    int held = table_hold(a1, a2, ac, &t);
-    if (held < 0) return NULL;
-    if (held > 0) Py_RETURN_NONE;
-    Py_ssize_t i = probe(&t, h1, h2);
-    long found = i < 0 ? -1 : (long)t.cls[i] - 1;
-    table_release(&t);
-    return PyLong_FromLong(found);
+} TableObject;
+
+static int TableObject_init(TableObject *self, PyObject *args, PyObject *kwargs) {
+    PyObject *a1, *a2, *ac;
+    if (!PyArg_ParseTuple(args, "OOO", &a1, &a2, &ac)) return -1;
+    table_release(&self->t);
+    int held = table_hold(a1, a2, ac, &self->t);
+    if (held > 0) {
+        PyErr_SetString(PyExc_TypeError, "Table needs writable C-contiguous uint64, uint64 and "
+                                         "int32 arrays of one power-of-two length");
+    }
+    return held == 0 ? 0 : -1;
 }
 
-/* put(h1s, h2s, cls, key, y) -> 1 new, 0 replaced, or None (the reference answers) */
-static PyObject *py_put(PyObject *self, PyObject *args) {
-    PyObject *a1, *a2, *ac, *key;
+static void TableObject_dealloc(TableObject *self) {
+    table_release(&self->t);
+    Py_TYPE(self)->tp_free((PyObject *)self);
+}
+
+/* find(key) -> class index, -1 when absent, or None (the reference answers) */
+static PyObject *TableObject_find(TableObject *self, PyObject *key) {
+    uint64_t h1, h2;
+    if (!self->t.held || hash_key(key, &h1, &h2)) Py_RETURN_NONE;
+    Py_ssize_t i = probe(&self->t, h1, h2);
+    return PyLong_FromLong(i < 0 ? -1 : (long)self->t.cls[i] - 1);
+}
+
+/* put(key, y) -> 1 new, 0 replaced, or None (the reference answers) */
+static PyObject *TableObject_put(TableObject *self, PyObject *args) {
+    PyObject *key;
     int y;
-    if (!PyArg_ParseTuple(args, "OOOOi", &a1, &a2, &ac, &key, &y)) return NULL;
+    if (!PyArg_ParseTuple(args, "Oi", &key, &y)) return NULL;
     if (y < 0 || y == INT32_MAX) Py_RETURN_NONE; /* the reference raises its error */
     uint64_t h1, h2;
-    if (hash_key(key, &h1, &h2)) Py_RETURN_NONE;
-    Table t;
-    int held = table_hold(a1, a2, ac, &t);
-    if (held < 0) return NULL;
-    if (held > 0) Py_RETURN_NONE;
-    Py_ssize_t i = probe(&t, h1, h2);
-    if (i < 0) {
-        table_release(&t);
-        return full_table();
-    }
-    int fresh = t.cls[i] == 0;
-    t.h1[i] = h1;
-    t.h2[i] = h2;
-    t.cls[i] = (int32_t)y + 1;
-    table_release(&t);
+    if (!self->t.held || hash_key(key, &h1, &h2)) Py_RETURN_NONE;
+    Py_ssize_t i = probe(&self->t, h1, h2);
+    if (i < 0) return full_table();
+    int fresh = self->t.cls[i] == 0;
+    self->t.h1[i] = h1;
+    self->t.h2[i] = h2;
+    self->t.cls[i] = (int32_t)y + 1;
     return PyLong_FromLong(fresh);
 }
+
+/* Whether ``item`` is an (exact str, int in 0..INT32_MAX - 1) pair: its hash and class. */
+static int pair_of(PyObject *item, uint64_t *h1, uint64_t *h2, int32_t *y) {
+    if (!PyTuple_CheckExact(item) || PyTuple_GET_SIZE(item) != 2) return 0;
+    PyObject *cls = PyTuple_GET_ITEM(item, 1);
+    if (!PyLong_CheckExact(cls)) return 0;
+    int overflow;
+    long v = PyLong_AsLongAndOverflow(cls, &overflow);
+    if (overflow || v < 0 || v >= INT32_MAX) return 0;
+    if (hash_key(PyTuple_GET_ITEM(item, 0), h1, h2)) return 0;
+    *y = (int32_t)v;
+    return 1;
+}
+
+/* put_many(pairs, start, previous, count, max_count, rotate_at) -> (next, added, shadowed)
+ *
+ * Puts the (id, class) pairs of a list from ``start`` on, as put one by one would, and stops
+ * where appliedids must act: before a new id that would take the table past ``max_count``
+ * entries (it grows), after a new id that brings it to ``rotate_at`` (> 0: it rotates), or at
+ * a pair it leaves to the reference. ``shadowed`` counts new ids that ``previous`` (a Table or
+ * None) also holds. */
+static PyObject *TableObject_put_many(TableObject *self, PyObject *args) {
+    PyObject *pairs, *previous;
+    Py_ssize_t start, count, max_count, rotate_at;
+    if (!PyArg_ParseTuple(args, "O!nOnnn", &PyList_Type, &pairs, &start, &previous, &count,
+                          &max_count, &rotate_at))
+        return NULL;
+    const Table *prev = NULL;
+    if (previous != Py_None) {
+        if (!PyObject_TypeCheck(previous, Py_TYPE(self))) {
+            PyErr_SetString(PyExc_TypeError, "previous must be a Table or None");
+            return NULL;
+        }
+        prev = ((TableObject *)previous)->t.held ? &((TableObject *)previous)->t : NULL;
+        if (prev == NULL) Py_RETURN_NONE;
+    }
+    if (!self->t.held) Py_RETURN_NONE;
+    Py_ssize_t n = PyList_GET_SIZE(pairs), i = start < 0 ? 0 : start, added = 0, shadowed = 0;
+    for (; i < n; i++) {
+        uint64_t h1, h2;
+        int32_t y;
+        if (!pair_of(PyList_GET_ITEM(pairs, i), &h1, &h2, &y)) break;
+        Py_ssize_t slot = probe(&self->t, h1, h2);
+        if (slot < 0) return full_table();
+        if (self->t.cls[slot] != 0) {
+            self->t.cls[slot] = y + 1;
+            continue;
+        }
+        if (count + added >= max_count) break;
+        self->t.h1[slot] = h1;
+        self->t.h2[slot] = h2;
+        self->t.cls[slot] = y + 1;
+        added++;
+        if (prev != NULL) {
+            Py_ssize_t there = probe(prev, h1, h2);
+            shadowed += there >= 0 && prev->cls[there] != 0;
+        }
+        if (rotate_at > 0 && count + added >= rotate_at) {
+            i++;
+            break;
+        }
+    }
+    return Py_BuildValue("(nnn)", i, added, shadowed);
+}
+
+static PyMethodDef table_methods[] = {
+    {"find", (PyCFunction)TableObject_find, METH_O, "The class index stored for an id, or -1."},
+    {"put", (PyCFunction)TableObject_put, METH_VARARGS,
+     "Store an id's class index; 1 when the id is new."},
+    {"put_many", (PyCFunction)TableObject_put_many, METH_VARARGS,
+     "Put (id, class) pairs until appliedids must grow or rotate the table."},
+    {NULL, NULL, 0, NULL},
+};
+
+static PyTypeObject TableType = {
+    PyVarObject_HEAD_INIT(NULL, 0).tp_name = "thresher._appliedids.Table",
+    .tp_basicsize = sizeof(TableObject),
+    .tp_flags = Py_TPFLAGS_DEFAULT,
+    .tp_doc = "One applied-id table's arrays, held for fast find and put.",
+    .tp_new = PyType_GenericNew,
+    .tp_init = (initproc)TableObject_init,
+    .tp_dealloc = (destructor)TableObject_dealloc,
+    .tp_methods = table_methods,
+};
 
 /* rehash(old h1s, h2s, cls, new h1s, h2s, cls) -> True, or None (the reference moves them).
  * Moves every entry of the old table to the new one in slot order, as the reference does. */
@@ -239,8 +332,6 @@ static PyObject *py_rehash(PyObject *self, PyObject *args) {
 
 static PyMethodDef methods[] = {
     {"hash128", py_hash128, METH_O, "MurmurHash3_x64_128 (seed 0) of a str's UTF-8: (h1, h2)."},
-    {"find", py_find, METH_VARARGS, "The class index stored for an id, or -1."},
-    {"put", py_put, METH_VARARGS, "Store an id's class index; 1 when the id is new."},
     {"rehash", py_rehash, METH_VARARGS, "Move every entry of one table into another."},
     {NULL, NULL, 0, NULL},
 };
@@ -251,4 +342,15 @@ static struct PyModuleDef module = {
     methods,
 };
 
-PyMODINIT_FUNC PyInit__appliedids(void) { return PyModule_Create(&module); }
+PyMODINIT_FUNC PyInit__appliedids(void) {
+    if (PyType_Ready(&TableType) < 0) return NULL;
+    PyObject *m = PyModule_Create(&module);
+    if (m == NULL) return NULL;
+    Py_INCREF(&TableType);
+    if (PyModule_AddObject(m, "Table", (PyObject *)&TableType) < 0) {
+        Py_DECREF(&TableType);
+        Py_DECREF(m);
+        return NULL;
+    }
+    return m;
+}

@@ -79,7 +79,7 @@ def capacity_for(count: int) -> int:
 class IdTable:
     """One open-addressing table of id hashes and classes; see the module docstring."""
 
-    __slots__ = ("cls", "count", "h1", "h2", "native")
+    __slots__ = ("_fast", "cls", "count", "h1", "h2", "native")
 
     def __init__(self, capacity: int, *, native: bool = True) -> None:
         if capacity < 1 or capacity & (capacity - 1):
@@ -89,6 +89,17 @@ class IdTable:
         self.cls = np.zeros(capacity, np.int32)
         self.count = 0
         self.native = native
+        self._hold()
+
+    def _hold(self) -> None:
+        # The compiled table holds the arrays (they never change size), or None: reference.
+        fast = None
+        if self.native and _appliedids is not None:
+            try:
+                fast = _appliedids.Table(self.h1, self.h2, self.cls)
+            except TypeError:  # arrays it does not take (a read-only view...)
+                fast = None
+        self._fast = fast
 
     @property
     def capacity(self) -> int:
@@ -104,8 +115,8 @@ class IdTable:
 
     def find(self, event_id: str) -> int:
         """The class index stored for ``event_id``, or -1."""
-        if self.native and _appliedids is not None:
-            made = _appliedids.find(self.h1, self.h2, self.cls, event_id)
+        if self._fast is not None:
+            made = self._fast.find(event_id)
             if made is not None:
                 return int(made)
         slot = self._slot(*_reference_hash(event_id))
@@ -115,8 +126,8 @@ class IdTable:
         """Store class ``y`` for ``event_id``; True when the id is new to this table."""
         if not 0 <= y <= MAX_CLASS:
             raise ValueError(f"a class index must be 0 to {MAX_CLASS}, not {y}")
-        if self.native and _appliedids is not None:
-            made = _appliedids.put(self.h1, self.h2, self.cls, event_id, y)
+        if self._fast is not None:
+            made = self._fast.put(event_id, y)
             if made is not None:
                 self.count += made
                 return bool(made)
@@ -195,6 +206,7 @@ class IdTable:
         table.h1, table.h2, table.cls = (np.require(a, k, ["C", "W"]) for a, k in zip(
             arrays, kinds, strict=True))  # fmt: skip
         table.count = int(np.count_nonzero(table.cls))
+        table._hold()
         if table.count != state["count"] or table.count * 4 > size * 3:
             raise CorruptSnapshot("snapshot holds an applied-id table with a wrong count")
         if int(table.cls.min()) < 0:
@@ -239,16 +251,39 @@ class AppliedIds:
             return
         if self.previous is not None and self.previous.find(event_id) >= 0:
             self.shadowed += 1
+        self._rotate_if_due()
+
+    def _rotate_if_due(self) -> None:
+        # On the count of ids set, which follows log order alone (deterministic).
         if self.window is not None and self.current.count >= self.window:
-            # Rotate on the count of ids set, which follows log order alone (deterministic).
             self.previous = self.current
             self.current = IdTable(capacity_for(self.window), native=self.native)
             self.shadowed = 0
 
     def update(self, pairs: Iterable[tuple[str, int]]) -> None:
         """Set each ``(id, class index)`` in order, as ``dict.update`` with pairs."""
-        for event_id, y in pairs:
-            self[event_id] = y
+        items = pairs if isinstance(pairs, list) else list(pairs)
+        at = 0
+        while at < len(items):
+            current, previous = self.current, self.previous
+            fast = current._fast
+            if fast is None or (previous is not None and previous._fast is None):
+                for event_id, y in items[at:]:  # the reference, one by one
+                    self[event_id] = y
+                return
+            room = current.capacity * 3 // 4
+            at, added, shadowed = fast.put_many(
+                items, at, None if previous is None else previous._fast,
+                current.count, room, self.window or 0,
+            )  # fmt: skip
+            current.count += added
+            self.shadowed += shadowed
+            self._rotate_if_due()
+            if at < len(items) and current is self.current:
+                # Full, or a pair the compiled path leaves to the reference: one by one.
+                event_id, y = items[at]
+                self[event_id] = y
+                at += 1
 
     def __len__(self) -> int:
         held = self.current.count - self.shadowed
