@@ -14,10 +14,12 @@ from hypothesis import strategies as st
 from thresher import appliedids, snapshot_format
 from thresher.appliedids import AppliedIds, IdTable, capacity_for, id_hash, id_key
 from thresher.demo_traffic import DEMO_MODEL, ListingTraffic
-from thresher.errors import Conflict
+from thresher.errors import Conflict, InvalidConfig
 from thresher.eventcache import EventCache
 from thresher.labellog import FileLog
+from thresher.lifecycle import ModelRegistry
 from thresher.models import Model, ModelConfig
+from thresher.settings import Settings
 from thresher.snapshots import SnapshotStore
 
 # A small alphabet makes repeats (duplicates, relabels) common; lone surrogates are ids too.
@@ -225,3 +227,27 @@ async def test_a_windowed_model_trains_an_old_retry_again(tmp_path: Path) -> Non
     restored.load_state(snapshot_format.decode(snapshot_format.encode(await model.capture())))
     assert restored.applied == model.applied and len(model.applied) <= 80
     await log.close()
+
+
+async def test_the_window_setting_reaches_every_model_and_survives_a_restart(
+    tmp_path: Path,
+) -> None:
+    with pytest.raises(InvalidConfig, match="applied_window"):
+        Settings.from_mapping({"applied_window": -1})
+    settings = Settings.from_mapping(
+        {"data_dir": str(tmp_path), "flush": "interval", "snapshot_interval": 0,
+         "snapshot_every": 0, "applied_window": 30}
+    )  # fmt: skip
+    registry = ModelRegistry(settings)
+    await registry.open()
+    model = await registry.create(dict(DEMO_MODEL))
+    await model.label(_labels(100), source="s", now=1.0)
+    # 90 ids filled three generations of 30: 10 in the current one, 30 in the previous.
+    assert model.applied.window == 30 and len(model.applied) == 40
+    await registry.snapshot(model.name)
+    held = model.applied
+    await registry.close()
+    reopened = ModelRegistry(settings)
+    await reopened.open()
+    assert reopened.get(model.name).applied == held
+    await reopened.close(snapshot=False)
