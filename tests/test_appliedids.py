@@ -171,6 +171,8 @@ def test_a_snapshot_under_another_window_keeps_every_id() -> None:
         lambda s: s.update(format=9),
         lambda s: s["tables"][0].update(h1=s["tables"][0]["h1"].astype(np.int64)),
         lambda s: s["tables"][0].update(cls=s["tables"][0]["cls"][:-1]),
+        lambda s: s["tables"][0].update(h2=s["tables"][0]["h2"][:-1]),
+        lambda s: s["tables"][0].update(cls=s["tables"][0]["cls"].astype(np.int64)),
         lambda s: s["tables"][0].update(count=s["tables"][0]["count"] + 1),
         lambda s: s.update(tables=[]),
     ],

@@ -55,10 +55,10 @@ async def test_snapshots_during_label_traffic_hold_the_state_at_their_offset(
     waiting: list[int] = []  # labels appended but not applied, seen from inside each capture
     real = models._capture_all
 
-    def slow_capture(arrays: dict[str, np.ndarray], tables: list[dict[str, Any]]) -> dict[str, Any]:
+    def slow_capture(arrays: dict[str, np.ndarray], applied: Any) -> Any:
         time.sleep(0.02)  # the loop appends (and would apply) labels meanwhile
         waiting.append(model.log.head() - model.offset)
-        return real(arrays, tables)
+        return real(arrays, applied)
 
     monkeypatch.setattr(models, "_capture_all", slow_capture)
     traffic = ListingTraffic(seed=3).batch(1200)
@@ -121,10 +121,10 @@ async def test_capture_refuses_a_state_swapped_while_it_ran(
     started = asyncio.Event()
     loop = asyncio.get_running_loop()
 
-    def slow_capture(arrays: dict[str, np.ndarray], tables: list[dict[str, Any]]) -> dict[str, Any]:
+    def slow_capture(arrays: dict[str, np.ndarray], applied: Any) -> Any:
         loop.call_soon_threadsafe(started.set)
         time.sleep(0.1)
-        return real(arrays, tables)
+        return real(arrays, applied)
 
     monkeypatch.setattr(models, "_capture_all", slow_capture)
     taking = asyncio.ensure_future(registry.snapshot(model.name))

@@ -6,8 +6,10 @@ MurmurHash3_x64_128 (seed 0) of its UTF-8 bytes, ``(h1, h2)``, in an open-addres
 of three numpy arrays: ``h1``, ``h2`` (uint64) and ``cls`` (int32, class index + 1; 0 is an
 empty slot). The home slot is ``h1 mod capacity`` (a power of two), collisions probe
 linearly, and a table is at most 3/4 full: 20 bytes a slot, 27 to 53 bytes an id. A snapshot
-stores the arrays as they are, so capturing is an array copy off the event loop and loading
-takes them over; no million-entry map is ever packed.
+stores each table as three arrays, each one blob: ``cls`` whole (as uint8 when the classes
+fit, so about 2 bytes an id) and ``h1``, ``h2`` of the used slots in slot order (16 bytes an
+id). Taking them is a gather a worker thread does; loading is a scatter back into the same
+slots, so a loaded table is bit-identical to the one saved. No map is ever packed.
 
 Two distinct ids share all 128 bits with probability below n(n - 1) / 2**129 (the birthday
 bound): about 1.5e-21 for a billion ids. If it happened, the second id would count as a
@@ -182,35 +184,34 @@ class IdTable:
         return [raw[k : k + 16] for k in range(0, len(raw), 16)], (self.cls[used] - 1).tolist()
 
     def state(self) -> dict[str, Any]:
-        """The table for a snapshot: its live arrays, which the caller copies before writing."""
-        return {"count": self.count, "h1": self.h1, "h2": self.h2, "cls": self.cls}
+        """The table for a snapshot, in new arrays: ``cls`` whole, the used slots' hashes."""
+        used = np.flatnonzero(self.cls)
+        small = self.count == 0 or int(self.cls.max()) <= np.iinfo(np.uint8).max
+        kept = self.cls.astype(np.uint8) if small else self.cls.copy()
+        return {"count": self.count, "cls": kept, "h1": self.h1[used], "h2": self.h2[used]}
 
     @classmethod
     def from_state(cls, state: Any, *, native: bool = True) -> IdTable:
-        """A table taking over a snapshot's arrays; CorruptSnapshot when they do not fit."""
+        """The table a snapshot's :meth:`state` saved; CorruptSnapshot when it does not fit."""
         if not isinstance(state, Mapping) or not {"count", "h1", "h2", "cls"} <= set(state):
             raise CorruptSnapshot("snapshot holds a malformed applied-id table")
-        arrays = [state["h1"], state["h2"], state["cls"]]
-        kinds = [np.uint64, np.uint64, np.int32]
-        if not all(
-            isinstance(a, np.ndarray) and a.dtype == k and a.ndim == 1
-            for a, k in zip(arrays, kinds, strict=True)
-        ):
+        kept, h1, h2 = state["cls"], state["h1"], state["h2"]
+        if not (
+            isinstance(kept, np.ndarray) and kept.ndim == 1 and kept.dtype in (np.uint8, np.int32)
+            and all(isinstance(h, np.ndarray) and h.ndim == 1 and h.dtype == np.uint64
+                    for h in (h1, h2))
+        ):  # fmt: skip
             raise CorruptSnapshot("snapshot holds applied-id arrays of the wrong type")
-        size = arrays[0].shape[0]
-        if any(a.shape[0] != size for a in arrays) or size < 1 or size & (size - 1):
-            raise CorruptSnapshot("snapshot holds applied-id arrays of unequal or odd length")
-        table = cls.__new__(cls)
-        table.native = native
-        # Native byte order and writable; a no-op for what the snapshot decoder returns.
-        table.h1, table.h2, table.cls = (np.require(a, k, ["C", "W"]) for a, k in zip(
-            arrays, kinds, strict=True))  # fmt: skip
-        table.count = int(np.count_nonzero(table.cls))
-        table._hold()
-        if table.count != state["count"] or table.count * 4 > size * 3:
+        size = kept.shape[0]
+        if size < 1 or size & (size - 1) or (kept.size and int(kept.min()) < 0):
+            raise CorruptSnapshot("snapshot holds an applied-id table of an impossible shape")
+        used = np.flatnonzero(kept)
+        if not used.size == h1.size == h2.size == state["count"] or used.size * 4 > size * 3:
             raise CorruptSnapshot("snapshot holds an applied-id table with a wrong count")
-        if int(table.cls.min()) < 0:
-            raise CorruptSnapshot("snapshot holds an applied-id table with a negative class")
+        table = cls(size, native=native)
+        table.cls[:] = kept
+        table.h1[used], table.h2[used] = h1, h2
+        table.count = int(used.size)
         return table
 
 
@@ -317,7 +318,7 @@ class AppliedIds:
         return [self.current] if self.previous is None else [self.current, self.previous]
 
     def state(self) -> dict[str, Any]:
-        """The index for a snapshot; its arrays are live (copy them before writing)."""
+        """The index for a snapshot, in new arrays (a gather: take it off the event loop)."""
         return {
             "format": FORMAT,
             "window": self.window,
@@ -329,7 +330,7 @@ class AppliedIds:
     def from_state(
         cls, state: Any, *, window: int | None = None, native: bool = True
     ) -> AppliedIds:
-        """An index taking over a snapshot's arrays, kept under ``window``.
+        """The index a snapshot's :meth:`state` saved, kept under ``window``.
 
         A snapshot taken under another window keeps every id it holds, as the previous
         generation (or the only table when unbounded); the next rotation follows ``window``.

@@ -39,21 +39,13 @@ EXPLAIN_MAX = 50
 
 
 def _capture_all(
-    arrays: dict[str, np.ndarray], tables: list[dict[str, Any]]
-) -> dict[str, np.ndarray | Sparse]:
-    """Each array as a snapshot stores it; runs in a worker thread while applying is held.
+    arrays: dict[str, np.ndarray], applied: AppliedIds
+) -> tuple[dict[str, np.ndarray | Sparse], dict[str, Any]]:
+    """Each array as a snapshot stores it, and the applied ids' state (new arrays too).
 
-    The applied-id ``tables`` are copied in place (their arrays replaced by the copies).
+    Runs in a worker thread while applying is held, so neither changes meanwhile.
     """
-    for table in tables:
-        for key in ("h1", "h2", "cls"):
-            table[key] = capture(table[key])
-    return {key: capture(array) for key, array in arrays.items()}
-
-
-def _applied_arrays(state: dict[str, Any]) -> list[dict[str, Any]]:
-    """The applied-id tables of a :meth:`Model._state`, whose arrays are live."""
-    return state["applied"]["tables"]  # type: ignore[no-any-return]
+    return {key: capture(array) for key, array in arrays.items()}, applied.state()
 
 
 class Model(Labelling):
@@ -220,9 +212,7 @@ class Model(Labelling):
         for key, value in state["learner"].items():
             if isinstance(value, np.ndarray):
                 state["learner"][key] = value.copy()
-        for table in _applied_arrays(state):
-            for key in ("h1", "h2", "cls"):
-                table[key] = table[key].copy()
+        state["applied"] = self.applied.state()
         return state
 
     async def capture(self) -> dict[str, Any]:
@@ -238,7 +228,10 @@ class Model(Labelling):
             state, learner = self._state(), self.learner
             live = state["learner"]
             arrays = {k: v for k, v in live.items() if isinstance(v, np.ndarray)}
-            live.update(await asyncio.to_thread(_capture_all, arrays, _applied_arrays(state)))
+            captured, state["applied"] = await asyncio.to_thread(
+                _capture_all, arrays, state["applied"]
+            )
+            live.update(captured)
             if self.learner is not learner or self.offset != state["offset"]:
                 raise Unavailable(
                     f"model {self.name!r} changed state while a snapshot was taken; retry",
@@ -265,14 +258,14 @@ class Model(Labelling):
         await self._resumed.wait()
 
     def _state(self) -> dict[str, Any]:
-        """:meth:`state` with the learner's live arrays in it."""
+        """:meth:`state` with the learner's live arrays and the live applied-id index in it."""
         return {
             "format": STATE_FORMAT,
             "config": self.config.to_json(),
             "offset": self.offset,
             "learner": self.learner.state(),
             "quality": self.quality.state(),
-            "applied": self.applied.state(),
+            "applied": self.applied,
             "excluded": sorted(self.exclude_sources),
             "scored": self.scored,
             "duplicates": self.duplicates,
@@ -286,9 +279,13 @@ class Model(Labelling):
         self.learner = Learner.from_state(state["learner"], copy=False)
         self._weights_digest = self._nonzero = None
         self.quality = Quality.from_state(state["quality"])
-        self.applied = AppliedIds.from_snapshot(
-            state["applied"], state["format"], window=self.applied_window
-        )
+        applied = state["applied"]
+        if isinstance(applied, AppliedIds):  # another model's live index (adopt): taken over
+            self.applied = applied
+        else:
+            self.applied = AppliedIds.from_snapshot(
+                applied, state["format"], window=self.applied_window
+            )
         self.offset = int(state["offset"])
         self.exclude_sources = frozenset(state.get("excluded", ()))
         self.scored = int(state.get("scored", 0))
