@@ -22,7 +22,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from . import http_figures, inproc, memory, report, storage
+from . import bench_ids, http_figures, inproc, memory, report, storage
 from .common import FULL, QUICK, ROOT, Mode, cpus, machine, missing_row, on_cpu
 
 RESULTS = Path(__file__).with_name("results")
@@ -44,6 +44,11 @@ def _snapshots(mode: Mode, tmp: Path) -> list[dict[str, Any]]:
 def _replay(mode: Mode, tmp: Path) -> list[dict[str, Any]]:
     with on_cpu(cpus()[0]):
         return storage.replay_rows(mode)
+
+
+def _ids(mode: Mode, tmp: Path) -> list[dict[str, Any]]:
+    with on_cpu(cpus()[0]):
+        return bench_ids.rows(mode)
 
 
 def _memory(mode: Mode, tmp: Path) -> list[dict[str, Any]]:
@@ -113,6 +118,7 @@ SECTIONS: dict[str, Section] = {
     "replay": _replay,
     "redis": _redis,
     "memory": _memory,
+    "ids": _ids,
 }
 
 

@@ -26,6 +26,8 @@ from aiohttp import web
 from aiohttp.test_utils import TestServer
 
 from conftest import ServerProcess, free_port, require_binary
+from thresher import redisswitch
+from thresher.appliedids import AppliedIds, IdTable
 from thresher.errors import LogUnavailable, NotFound
 from thresher.http import create_app
 from thresher.redislog import _labels_from
@@ -527,6 +529,57 @@ async def test_append_script_is_atomic_dense_and_exactly_once(
             await dead.definitions()
         finally:
             await dead.close()
+
+
+def _generation(table: IdTable | None) -> set[bytes]:
+    return set() if table is None else set(table.keys()[0])
+
+
+async def test_windowed_admission_rotates_as_the_replicas_index_and_a_switch_stages_it(
+    cluster: tuple[RedisServer, list[Replica]],
+) -> None:
+    server, _ = cluster
+    state = RedisState(f"redis://127.0.0.1:{server.port}/3", applied_window=4)
+    try:
+        token = await state.define("windowed", {"name": "windowed"})
+        log = await state.open_log("windowed", token)
+        mirror = AppliedIds(4)  # what every follower's model holds at the same offset
+        for i in range(10):
+            first, dups, conflict = await log.admit([b"p"], [(f"a{i}", "x")])
+            assert (first, dups, conflict) == (i, [], None)
+            mirror[f"a{i}"] = 0
+            async with state.client.pipeline(transaction=False) as pipe:
+                pipe.hkeys(log.keys.ids).hkeys(log.keys.previous)
+                current, previous = await pipe.execute()
+            assert set(current) == _generation(mirror.current)
+            assert set(previous) == _generation(mirror.previous)
+        # a9 is 1 id back, a0 10: past 2N = 8, so a0 is admitted (and trained) again.
+        assert (await log.admit([b"p", b"p"], [("a9", "x"), ("a0", "x")]))[:2] == (10, [0])
+        # Raw ids written before ids were hashed still count until the next switch.
+        await state.client.hset(log.keys.legacy, "old", "y")
+        assert (await log.admit([b"p"], [("old", "x")]))[2] == (0, "y")
+        assert (await log.admit([b"p"], [("old", "y")]))[:2] == (-1, [0])
+        # A restore sets both generations from the snapshot's arrays and drops the raw ids.
+        snapshot = AppliedIds(4)
+        snapshot.update((f"s{i}", i % 2) for i in range(6))
+        store = state.store("windowed", token, keep=3)
+        info = await asyncio.to_thread(
+            store.write,
+            {"format": 2, "offset": 11, "applied": snapshot.state(), "excluded": []},
+            offset=11,
+            time=1.0,
+        )
+        await redisswitch.append(log, store, redisswitch.restore(info.generation), ["x", "y"])
+        async with state.client.pipeline(transaction=False) as pipe:
+            pipe.hgetall(log.keys.ids).hkeys(log.keys.previous).exists(log.keys.legacy)
+            current, previous, legacy = await pipe.execute()
+        keys, ys = snapshot.current.keys()
+        assert current == {k: [b"x", b"y"][y] for k, y in zip(keys, ys, strict=True)}
+        assert set(previous) == _generation(snapshot.previous) and legacy == 0
+        assert (await log.admit([b"p", b"p"], [("s5", "y"), ("old", "x")]))[1] == [0]
+        await state.undefine("windowed", token)
+    finally:
+        await state.close()
 
 
 def test_a_follower_takes_entries_whole_only_when_they_are_the_next_labels() -> None:

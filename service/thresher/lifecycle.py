@@ -213,7 +213,12 @@ class ModelRegistry(Snapshotting):
             max_entries=s.cache_entries, max_bytes=s.cache_bytes, ttl_seconds=s.cache_ttl
         )
         model = Model(
-            config, log, cache=cache, max_fields=s.max_fields, apply_on_append=self.shared is None
+            config,
+            log,
+            cache=cache,
+            max_fields=s.max_fields,
+            apply_on_append=self.shared is None,
+            applied_window=s.applied_window or None,
         )
         self.stores[config.name] = store
         loaded = await asyncio.to_thread(store.load_newest)
@@ -287,7 +292,10 @@ def _shared_state(settings: Settings) -> RedisState | None:
     from .redisstate import RedisState
 
     return RedisState(
-        settings.log, wait_replicas=settings.redis_wait_replicas, event_ttl=settings.cache_ttl
+        settings.log,
+        wait_replicas=settings.redis_wait_replicas,
+        event_ttl=settings.cache_ttl,
+        applied_window=settings.applied_window,
     )
 
 

@@ -143,7 +143,7 @@ class Snapshotting:
 
     async def _rebuilt(self, model: Model, excluded: frozenset[str], from_snapshot: bool) -> Model:
         name = model.name
-        fresh = Model(model.config, model.log, cache=model.cache, max_fields=model.max_fields)
+        fresh = model.fresh()
         if from_snapshot:
             oldest = self._oldest_snapshot(name)
             fresh.load_state(await asyncio.to_thread(self.stores[name].load, oldest))

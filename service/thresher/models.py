@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 
+from .appliedids import AppliedIds
 from .applying import RECENT_MISTAKES
 from .errors import InvalidConfig, InvalidEvent, Unavailable
 from .eventcache import EventCache
@@ -33,13 +34,18 @@ from .snapshot_format import Sparse, capture
 
 __all__ = ["RULES", "LabelAck", "Model", "ModelConfig", "SharedLog"]
 
-STATE_FORMAT = 1
+STATE_FORMAT = 2  # 2: the applied ids as `AppliedIds` arrays; 1 (still read): an id -> class map
 EXPLAIN_MAX = 50
 
 
-def _capture_all(arrays: dict[str, np.ndarray]) -> dict[str, np.ndarray | Sparse]:
-    """Each array as a snapshot stores it; runs in a worker thread while applying is held."""
-    return {key: capture(array) for key, array in arrays.items()}
+def _capture_all(
+    arrays: dict[str, np.ndarray], applied: AppliedIds
+) -> tuple[dict[str, np.ndarray | Sparse], dict[str, Any]]:
+    """Each array as a snapshot stores it, and the applied ids' state (new arrays too).
+
+    Runs in a worker thread while applying is held, so neither changes meanwhile.
+    """
+    return {key: capture(array) for key, array in arrays.items()}, applied.state()
 
 
 class Model(Labelling):
@@ -53,8 +59,11 @@ class Model(Labelling):
         cache: EventCache,
         max_fields: int = 1000,
         apply_on_append: bool = True,
+        applied_window: int | None = None,
     ) -> None:
         self.config = config
+        # Ids kept for exactly-once training: the last N to 2N applied ids, or all when None.
+        self.applied_window = applied_window
         self.log = log
         self.cache = cache
         self.max_fields = max_fields
@@ -98,7 +107,7 @@ class Model(Labelling):
         self.quality = Quality(list(self.config.classes))
         self._weights_digest: tuple[tuple[int, int, int], str] | None = None
         self._nonzero: tuple[tuple[int, int, int], int] | None = None
-        self.applied: dict[str, int] = {}
+        self.applied = AppliedIds(self.applied_window)
         self.offset = 0
 
     @property
@@ -203,6 +212,7 @@ class Model(Labelling):
         for key, value in state["learner"].items():
             if isinstance(value, np.ndarray):
                 state["learner"][key] = value.copy()
+        state["applied"] = self.applied.state()
         return state
 
     async def capture(self) -> dict[str, Any]:
@@ -210,14 +220,18 @@ class Model(Labelling):
 
         Label application is held while a worker thread takes the arrays slice by slice, as
         the snapshot will store them (a mostly-zero array as its nonzero elements, never
-        copied whole); labels are still appended to the log meanwhile and applied after.
+        copied whole), the applied-id tables among them; labels are still appended to the log
+        meanwhile and applied after.
         """
         self.hold()
         try:
             state, learner = self._state(), self.learner
             live = state["learner"]
             arrays = {k: v for k, v in live.items() if isinstance(v, np.ndarray)}
-            live.update(await asyncio.to_thread(_capture_all, arrays))
+            captured, state["applied"] = await asyncio.to_thread(
+                _capture_all, arrays, state["applied"]
+            )
+            live.update(captured)
             if self.learner is not learner or self.offset != state["offset"]:
                 raise Unavailable(
                     f"model {self.name!r} changed state while a snapshot was taken; retry",
@@ -244,14 +258,14 @@ class Model(Labelling):
         await self._resumed.wait()
 
     def _state(self) -> dict[str, Any]:
-        """:meth:`state` with the learner's live arrays in it."""
+        """:meth:`state` with the learner's live arrays and the live applied-id index in it."""
         return {
             "format": STATE_FORMAT,
             "config": self.config.to_json(),
             "offset": self.offset,
             "learner": self.learner.state(),
             "quality": self.quality.state(),
-            "applied": dict(self.applied),
+            "applied": self.applied,
             "excluded": sorted(self.exclude_sources),
             "scored": self.scored,
             "duplicates": self.duplicates,
@@ -260,12 +274,18 @@ class Model(Labelling):
 
     def load_state(self, state: Mapping[str, Any]) -> None:
         """Replace the learned state with a snapshot's; its arrays are taken over, not copied."""
-        if state.get("format") != STATE_FORMAT:
+        if state.get("format") not in (1, STATE_FORMAT):
             raise InvalidConfig(f"snapshot format {state.get('format')!r} is not supported")
         self.learner = Learner.from_state(state["learner"], copy=False)
         self._weights_digest = self._nonzero = None
         self.quality = Quality.from_state(state["quality"])
-        self.applied = {str(k): int(v) for k, v in state["applied"].items()}
+        applied = state["applied"]
+        if isinstance(applied, AppliedIds):  # another model's live index (adopt): taken over
+            self.applied = applied
+        else:
+            self.applied = AppliedIds.from_snapshot(
+                applied, state["format"], window=self.applied_window
+            )
         self.offset = int(state["offset"])
         self.exclude_sources = frozenset(state.get("excluded", ()))
         self.scored = int(state.get("scored", 0))
@@ -280,6 +300,7 @@ class Model(Labelling):
             cache=self.cache,
             max_fields=self.max_fields,
             apply_on_append=self.apply_on_append,
+            applied_window=self.applied_window,
         )
 
     def adopt(self, other: Model) -> None:

@@ -5,12 +5,20 @@ refuses it whole, duplicates are left out, and every new record takes the next d
 It refuses everything while the model is deleted (another incarnation is live) or frozen for a
 restore or rebuild (`redisswitch`). A record from an excluded source is appended but its id
 stays open, as in the file log. `RedisLog.admit` (`redislog`) is the way in.
+
+Ids are kept by their 16-byte hash (`appliedids.id_key`), as the replicas' `AppliedIds` keep
+them, so a restore or rebuild can set the hash from a snapshot's arrays. Under
+--applied-window the hash rotates exactly as `AppliedIds` does: when the current generation
+holds N ids it becomes the previous one, so the script and every replica's index agree at
+each offset. A hash of raw ids written before ids were hashed is still consulted until the
+next restore or rebuild drops it.
 """
 
 from __future__ import annotations
 
 from typing import TYPE_CHECKING, Any
 
+from .appliedids import id_key
 from .errors import LogUnavailable, NotFound, Unavailable
 from .redislog import FAILURES, RETRY_AFTER, unavailable
 
@@ -20,43 +28,56 @@ if TYPE_CHECKING:
 WAIT_MS = 1000  # how long an append waits for --redis-wait-replicas confirmations
 ADMITTED, CONFLICT, GONE, FROZEN = 0, 1, 2, 3  # the first element of the script's answer
 
-# KEYS: seq, stream, applied, live, freeze, excluded. ARGV: token, n, then n triples (id or
-# "", label, payload). A record from an excluded source is appended but never applied, so its
-# id stays open, as in the file log; only then are payloads decoded here.
+# KEYS: seq, stream, ids, live, freeze, excluded, previous ids, legacy raw ids. ARGV: token, n,
+# window (0: none), then n quadruples (id key or "", raw id or "", label, payload). A record
+# from an excluded source is appended but never applied, so its id stays open, as in the file
+# log; only then are payloads decoded here.
 APPEND = """
 if redis.call('GET', KEYS[4]) ~= ARGV[1] then return {2} end
 if redis.call('EXISTS', KEYS[5]) == 1 then return {3} end
-local n = tonumber(ARGV[2])
+local n, window = tonumber(ARGV[2]), tonumber(ARGV[3])
+local legacy = redis.call('EXISTS', KEYS[8]) == 1
 local dup, open = {}, {}
 if redis.call('SCARD', KEYS[6]) > 0 then
   for i = 0, n - 1 do
-    local ok, record = pcall(cmsgpack.unpack, ARGV[5 + 3 * i])
+    local ok, record = pcall(cmsgpack.unpack, ARGV[7 + 4 * i])
     if ok and type(record) == 'table' and type(record['source']) == 'string'
         and redis.call('SISMEMBER', KEYS[6], record['source']) == 1 then
       open[i] = true
     end
   end
 end
+local function known(i)
+  local key = ARGV[4 + 4 * i]
+  local have = redis.call('HGET', KEYS[3], key) or redis.call('HGET', KEYS[7], key)
+  if not have and legacy then have = redis.call('HGET', KEYS[8], ARGV[5 + 4 * i]) end
+  return have
+end
 for i = 0, n - 1 do
-  local id = ARGV[3 + 3 * i]
-  if id ~= '' then
-    local have = redis.call('HGET', KEYS[3], id)
+  if ARGV[4 + 4 * i] ~= '' then
+    local have = known(i)
     if have then
-      if have ~= ARGV[4 + 3 * i] then return {1, i, have} end
+      if have ~= ARGV[6 + 4 * i] then return {1, i, have} end
       dup[i] = true
     end
   end
 end
 local first, count = -1, 0
 for i = 0, n - 1 do
-  local id = ARGV[3 + 3 * i]
-  if not dup[i] and id ~= '' and not open[i]
-      and redis.call('HSETNX', KEYS[3], id, ARGV[4 + 3 * i]) == 0 then
-    dup[i] = true
+  local key = ARGV[4 + 4 * i]
+  if not dup[i] and key ~= '' and not open[i] then
+    if known(i) then
+      dup[i] = true  -- an id earlier in this batch
+    else
+      redis.call('HSET', KEYS[3], key, ARGV[6 + 4 * i])
+      if window > 0 and redis.call('HLEN', KEYS[3]) >= window then
+        redis.call('RENAME', KEYS[3], KEYS[7])  -- as AppliedIds rotates
+      end
+    end
   end
   if not dup[i] then
     local seq = redis.call('INCR', KEYS[1])
-    redis.call('XADD', KEYS[2], '0-' .. seq, 'd', ARGV[5 + 3 * i])
+    redis.call('XADD', KEYS[2], '0-' .. seq, 'd', ARGV[7 + 4 * i])
     if first < 0 then first = seq - 1 end
     count = count + 1
   end
@@ -71,11 +92,14 @@ async def admit(
     log: RedisLog, payloads: list[bytes], keys: list[tuple[str | None, str]]
 ) -> tuple[int, list[int], tuple[int, str] | None]:
     """Append what is new, atomically: (first offset, duplicate positions, conflict)."""
-    args: list[Any] = [log.token, len(payloads)]
+    args: list[Any] = [log.token, len(payloads), log.state.applied_window]
     for (event_id, label), payload in zip(keys, payloads, strict=True):
-        args += [event_id or "", label, payload]
-    ks = [log.keys.seq, log.keys.stream, log.keys.applied, log.keys.live,
-          log.keys.freeze, log.keys.excluded]  # fmt: skip
+        if event_id is None:
+            args += ["", "", label, payload]
+        else:
+            args += [id_key(event_id), event_id, label, payload]
+    ks = [log.keys.seq, log.keys.stream, log.keys.ids, log.keys.live, log.keys.freeze,
+          log.keys.excluded, log.keys.previous, log.keys.legacy]  # fmt: skip
     want, confirmed = log.state.wait_replicas, None
     try:
         if want:

@@ -7,14 +7,18 @@ model's incarnation token, so a model deleted and created again never meets its 
     thresher:{name}:live        string  the current token; the append script checks it
     thresher:{name}:T:seq       counter records appended so far: the head offset
     thresher:{name}:T:stream    stream  entry ``0-n`` holds offset n-1 in field ``d``
-    thresher:{name}:T:applied   hash    event id -> label: exactly-once admission
+    thresher:{name}:T:ids       hash    id key -> label: exactly-once admission; the key is
+                                        the id's 16-byte hash (`appliedids.id_key`)
+    thresher:{name}:T:ids:prev  hash    the previous generation under --applied-window
+    thresher:{name}:T:applied   hash    raw event id -> label, as written before the ids
+                                        were hashed: read only, dropped by the next switch
     thresher:{name}:T:excluded  set     sources whose labels are appended but never applied
     thresher:{name}:T:freeze    string  set while a restore or rebuild is being appended
     thresher:{name}:T:ev:ID     string  msgpack [fields, served label, time], with a TTL
     thresher:{name}:T:snaps     hash    generation -> msgpack {offset, time, bytes, chunks}
     thresher:{name}:T:snap:G:I  string  chunk I of snapshot generation G
     thresher:{name}:T:snapgen, :snaplock  generation counter; writer lock (SET NX PX)
-    thresher:{name}:T:applied:next  the applied ids a restore or rebuild leaves, staged
+    thresher:{name}:T:ids:next, :ids:next:prev  the id hashes a restore or rebuild leaves
 
 One Lua script admits a batch atomically (`redisadmit`): a conflict refuses it whole,
 duplicates are left out, and every new record takes the next dense offset. Each replica's
@@ -84,10 +88,11 @@ class Keys:
         self.live = f"thresher:{{{name}}}:live"
         base = f"thresher:{{{name}}}:{token}:"
         self.base = base
-        self.seq, self.stream, self.applied = base + "seq", base + "stream", base + "applied"
+        self.seq, self.stream = base + "seq", base + "stream"
+        self.ids, self.previous, self.legacy = base + "ids", base + "ids:prev", base + "applied"
         self.snaps, self.snapgen, self.lock = base + "snaps", base + "snapgen", base + "snaplock"
         self.freeze, self.excluded = base + "freeze", base + "excluded"
-        self.staged = base + "applied:next"
+        self.staged, self.staged_previous = base + "ids:next", base + "ids:next:prev"
 
     def event(self, event_id: str) -> str:
         return f"{self.base}ev:{event_id}"

@@ -57,7 +57,14 @@ return 0
 class RedisState:
     """One server's link to Redis: clients, scripts, the model directory, logs and stores."""
 
-    def __init__(self, url: str, *, wait_replicas: int = 0, event_ttl: float = 86_400.0) -> None:
+    def __init__(
+        self,
+        url: str,
+        *,
+        wait_replicas: int = 0,
+        event_ttl: float = 86_400.0,
+        applied_window: int = 0,
+    ) -> None:
         once = {"retry": AsyncRetry(NoBackoff(), 0), "socket_connect_timeout": 1.0}
         try:
             # No client retries: a retried append could double a label that has no id. When
@@ -76,6 +83,7 @@ class RedisState:
         except ValueError as exc:
             raise InvalidConfig(f"log URL {url!r} is not a Redis URL: {exc}", path="log") from None
         self.wait_replicas = wait_replicas
+        self.applied_window = applied_window  # as --applied-window; 0 keeps every id
         self.event_ttl = max(1, int(event_ttl))
         self.append = self.client.register_script(APPEND)
         self.release = self.sync.register_script(RELEASE)
@@ -149,8 +157,9 @@ class RedisState:
                 for g, meta in (await client.hgetall(keys.snaps)).items()
                 for i in range(int(msgpack.unpackb(meta)["chunks"]))
             ]
-            await client.unlink(keys.seq, keys.stream, keys.applied, keys.snaps, keys.snapgen,
-                                keys.excluded, keys.freeze, keys.staged, *chunks)  # fmt: skip
+            await client.unlink(keys.seq, keys.stream, keys.ids, keys.previous, keys.legacy,
+                                keys.snaps, keys.snapgen, keys.excluded, keys.freeze,
+                                keys.staged, keys.staged_previous, *chunks)  # fmt: skip
             async for batch in _batches(client.scan_iter(match=keys.event("*"), count=1000)):
                 await client.unlink(*batch)
         except FAILURES as exc:

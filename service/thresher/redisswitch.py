@@ -11,9 +11,10 @@ follower, on reaching it, makes the same deterministic change there:
   control record, skipping the excluded sources and any earlier control record, as a rebuild
   over the file log replays every label the log holds.
 
-The same script that appends the record resets the shared applied-id hash to the ids the
-switched state holds, and the set of excluded sources the append script consults, so an id
-whose label was rolled back can be labelled again. While the replica that took the request
+The same script that appends the record resets the shared id hashes (both generations under
+--applied-window) to the ids the switched state holds, as every follower's `AppliedIds` will
+hold them there, and the set of excluded sources the append script consults, so an id whose
+label was rolled back can be labelled again. While the replica that took the request
 computes that hash, a *freeze* key makes the append script refuse labels (503), so the head
 of the stream stays where the computation read it.
 """
@@ -29,6 +30,7 @@ from typing import TYPE_CHECKING, Any
 import msgpack
 
 from . import records
+from .appliedids import AppliedIds
 from .errors import Conflict, NotFound, Unavailable
 from .labellog import OffsetOutOfRange
 from .redislog import FAILURES, unavailable
@@ -46,7 +48,8 @@ ADMITTED, TRIMMED, GONE, FROZEN = 0, 1, 2, 3  # the first element of the script'
 
 _log = logging.getLogger("thresher.redis")
 
-# KEYS: seq, stream, applied, live, freeze, staged applied ids, excluded sources.
+# KEYS: seq, stream, ids, live, freeze, staged ids, excluded sources, previous ids, staged
+# previous ids, legacy raw ids (dropped: the staged hashes hold every id the switch leaves).
 # ARGV: token, freeze mark, control payload, lowest offset the stream must still hold (-1:
 # none), then the excluded sources.
 CONTROL = """
@@ -58,16 +61,18 @@ if need >= 0 then
   local oldest = redis.call('XRANGE', KEYS[2], '-', '+', 'COUNT', 1)
   if #oldest > 0 then first = tonumber(string.match(oldest[1][1], '%-(%d+)$')) - 1 end
   if first > need then
-    redis.call('DEL', KEYS[5], KEYS[6])
+    redis.call('DEL', KEYS[5], KEYS[6], KEYS[9])
     return {1, first}
   end
 end
-if redis.call('EXISTS', KEYS[6]) == 1 then
-  redis.call('RENAME', KEYS[6], KEYS[3])
-else
-  redis.call('DEL', KEYS[3])
+for _, k in ipairs({{6, 3}, {9, 8}}) do
+  if redis.call('EXISTS', KEYS[k[1]]) == 1 then
+    redis.call('RENAME', KEYS[k[1]], KEYS[k[2]])
+  else
+    redis.call('DEL', KEYS[k[2]])
+  end
 end
-redis.call('DEL', KEYS[7])
+redis.call('DEL', KEYS[7], KEYS[10])
 for i = 5, #ARGV do redis.call('SADD', KEYS[7], ARGV[i]) end
 local seq = redis.call('INCR', KEYS[1])
 redis.call('XADD', KEYS[2], '0-' .. seq, 'c', ARGV[3])
@@ -75,9 +80,12 @@ redis.call('DEL', KEYS[5])
 return {0, seq - 1}
 """
 
-# KEYS: freeze, staged. ARGV: the freeze mark; drops both only while the mark is ours.
+# KEYS: freeze, staged, staged previous. ARGV: the freeze mark; drops them only while the mark
+# is ours.
 THAW = """
-if redis.call('GET', KEYS[1]) == ARGV[1] then return redis.call('DEL', KEYS[1], KEYS[2]) end
+if redis.call('GET', KEYS[1]) == ARGV[1] then
+  return redis.call('DEL', KEYS[1], KEYS[2], KEYS[3])
+end
 return 0
 """
 
@@ -108,25 +116,31 @@ async def append(
             )
         try:
             applied, excluded, need = await _target(log, store, control, classes)
-            await client.delete(keys.staged)
-            items = list(applied.items())
-            for k in range(0, len(items), STAGE):
-                await client.hset(keys.staged, mapping=dict(items[k : k + STAGE]))
+            await client.delete(keys.staged, keys.staged_previous)
+            staging = [keys.staged, keys.staged_previous]
+            for where, table in zip(staging, applied.tables(), strict=False):
+                ids, ys = table.keys()
+                for k in range(0, len(ids), STAGE):
+                    part = zip(ids[k : k + STAGE], ys[k : k + STAGE], strict=True)
+                    await client.hset(where, mapping={i: classes[y] for i, y in part})
             ks = [
                 keys.seq,
                 keys.stream,
-                keys.applied,
+                keys.ids,
                 keys.live,
                 keys.freeze,
                 keys.staged,
                 keys.excluded,
+                keys.previous,
+                keys.staged_previous,
+                keys.legacy,
             ]
             payload = msgpack.packb(control, use_bin_type=True)
             reply = await client.eval(
                 CONTROL, len(ks), *ks, log.token, mark, payload, need, *excluded
             )
         except BaseException:
-            await client.eval(THAW, 2, keys.freeze, keys.staged, mark)
+            await client.eval(THAW, 3, keys.freeze, keys.staged, keys.staged_previous, mark)
             raise
     except FAILURES as exc:
         log.state.failed(exc)
@@ -184,11 +198,19 @@ async def apply(
 
 async def _target(
     log: RedisLog, store: RedisSnapshots, control: dict[str, Any], classes: Sequence[str]
-) -> tuple[dict[str, str], list[str], int]:
-    """What the switch leaves: applied ids (id -> label), excluded sources, offset it needs."""
+) -> tuple[AppliedIds, list[str], int]:
+    """What the switch leaves: the applied ids, excluded sources, and the offset it needs.
+
+    The ids are those every follower's model will hold right after the switch: the
+    snapshot's, then (a rebuild) those of the labels it relearns, in log order.
+    """
     generation = control["generation"]
     state = None if generation is None else await asyncio.to_thread(store.load, generation)
-    applied = {} if state is None else {k: classes[int(y)] for k, y in state["applied"].items()}
+    window = log.state.applied_window or None
+    if state is None:
+        applied = AppliedIds(window)
+    else:
+        applied = AppliedIds.from_snapshot(state["applied"], state["format"], window=window)
     if control["control"] == "restore":
         return applied, sorted((state or {}).get("excluded", ())), -1
     excluded = frozenset(control["exclude_sources"])
@@ -196,7 +218,7 @@ async def _target(
     await log.refresh()  # the head cannot move while the freeze holds
     if log.first() > start:
         raise _trimmed(log.name, log.first())
-    known = set(classes)
+    index = {c: y for y, c in enumerate(classes)}
     async for _, data in log.entries(start, log.head()):
         payload = data.get(b"d")
         if payload is None:
@@ -206,8 +228,9 @@ async def _target(
         except records.CorruptRecord:
             continue  # the followers stop at it; it holds no id to admit
         event_id = record["id"]
-        if event_id is not None and record["source"] not in excluded and record["label"] in known:
-            applied[event_id] = record["label"]
+        y = index.get(record["label"])
+        if event_id is not None and record["source"] not in excluded and y is not None:
+            applied[event_id] = y
     return applied, sorted(excluded), start
 
 

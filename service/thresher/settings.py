@@ -51,6 +51,12 @@ class Settings:
     log_retain: int = _opt(
         0, "labels kept in the log below the oldest retained snapshot (for rebuilds)"
     )
+    applied_window: int = _opt(
+        0,
+        "labels whose ids are remembered for exactly-once training: a retry is recognised at "
+        "least this many and at most twice this many applied labels back, an older one is "
+        "trained again (0 = every id, forever). Set the same on every replica",
+    )
     shutdown_timeout: float = _opt(20.0, "seconds allowed for a graceful shutdown")
     max_body_bytes: int = _opt(8 * MiB, "largest request body accepted, in bytes")
     max_events: int = _opt(10_000, "most events in one score request")
@@ -139,6 +145,7 @@ class Settings:
             "snapshot_interval",
             "snapshot_every",
             "log_retain",
+            "applied_window",
             "labels_per_second",
             "redis_wait_replicas",
         ):
