@@ -1,8 +1,9 @@
 """The HTTP service: ``create_app(settings) -> web.Application``.
 
 Handlers translate between HTTP and `ModelRegistry`/`Model` calls and hold no learning logic.
-The middleware in `http_edge` maps every `ThresherError` (and aiohttp's own HTTP errors) to
-RFC 9457 problem details, counts responses and latency per route, and caps requests in flight;
+The edge in `http_edge`, wrapped around every route's handler, maps every `ThresherError` (and
+aiohttp's own HTTP errors) to RFC 9457 problem details, counts responses and latency per route,
+caps requests in flight and authenticates;
 `http_io` reads bodies and writes answers.
 """
 
@@ -33,7 +34,7 @@ from .errors import (
     ThresherError,
     Unavailable,
 )
-from .http_edge import EDGE, PRINCIPAL, Edge, edge, principal
+from .http_edge import EDGE, PRINCIPAL, Edge, Handler, guard, principal, unmatched
 from .http_io import answer, read_body, require_object
 from .lifecycle import ModelRegistry
 from .metrics import HttpMetrics, build_registry
@@ -49,7 +50,7 @@ LIMITER = web.AppKey("limiter", RateLimiter)
 PROM = web.AppKey("prometheus", CollectorRegistry)
 HTTP_METRICS = web.AppKey("http_metrics", HttpMetrics)
 PAGE_DIR = Path(__file__).with_name("page")
-__all__ = ["EDGE", "PRINCIPAL", "create_app", "edge"]
+__all__ = ["EDGE", "PRINCIPAL", "create_app"]
 
 
 # -- handlers ------------------------------------------------------------------------------
@@ -365,6 +366,30 @@ async def lifecycle_ctx(app: web.Application) -> AsyncIterator[None]:
         await registry.close(snapshot=True)
 
 
+# Every route, each behind the edge (`guard`). aiohttp tries the routes under one path prefix
+# in the order they were added, so the hot ones come first: scoring, then labels.
+ROUTES: list[tuple[str, str, Handler]] = [
+    ("POST", "/api/models/{model}/score", score),
+    ("POST", "/api/models/{model}/labels", post_labels),
+    ("POST", "/api/models", create_model),
+    ("GET", "/api/models", list_models),
+    ("GET", "/api/models/{model}", get_model),
+    ("DELETE", "/api/models/{model}", delete_model),
+    ("GET", "/api/models/{model}/quality", quality),
+    ("GET", "/api/models/{model}/snapshots", list_snapshots),
+    ("POST", "/api/models/{model}/snapshots", take_snapshot),
+    ("POST", "/api/models/{model}/snapshots/{generation}/restore", restore_snapshot),
+    ("POST", "/api/models/{model}/rebuild", rebuild),
+    ("GET", "/api/events", events_stream),
+    ("GET", "/api/openapi.json", openapi),
+    ("GET", "/metrics", metrics),
+    ("GET", "/healthz", healthz),
+    ("GET", "/readyz", readyz),
+    ("GET", "/", page),
+    ("GET", "/page/{file}", page),
+]
+
+
 def create_app(
     settings: Settings, *, registry: ModelRegistry | None = None, freeze_gc: bool = False
 ) -> web.Application:
@@ -378,7 +403,7 @@ def create_app(
             f"refusing to listen on {settings.host} without --tokens-file; create tokens with "
             "`thresher token new`, or pass --insecure to accept anyone who can reach the port"
         )
-    app = web.Application(middlewares=[edge], client_max_size=settings.max_body_bytes)
+    app = web.Application(client_max_size=settings.max_body_bytes)
     app[SETTINGS] = settings
     app[FREEZE_GC] = freeze_gc
     models = registry or ModelRegistry(settings)
@@ -393,25 +418,13 @@ def create_app(
         max_inflight=settings.max_inflight,
     )
     app[BACKGROUND] = []
-    r = app.router
-    r.add_post("/api/models", create_model)
-    r.add_get("/api/models", list_models)
-    r.add_get("/api/models/{model}", get_model)
-    r.add_delete("/api/models/{model}", delete_model)
-    r.add_post("/api/models/{model}/score", score)
-    r.add_post("/api/models/{model}/labels", post_labels)
-    r.add_get("/api/models/{model}/quality", quality)
-    r.add_get("/api/models/{model}/snapshots", list_snapshots)
-    r.add_post("/api/models/{model}/snapshots", take_snapshot)
-    r.add_post("/api/models/{model}/snapshots/{generation}/restore", restore_snapshot)
-    r.add_post("/api/models/{model}/rebuild", rebuild)
-    r.add_get("/api/events", events_stream)
-    r.add_get("/api/openapi.json", openapi)
-    r.add_get("/metrics", metrics)
-    r.add_get("/healthz", healthz)
-    r.add_get("/readyz", readyz)
-    r.add_get("/", page)
-    r.add_get("/page/{file}", page)
+    for method, path, handler in ROUTES:
+        guarded = guard(app[EDGE], path, handler)
+        if method == "GET":
+            app.router.add_route("HEAD", path, guarded)  # as aiohttp's add_get does
+        app.router.add_route(method, path, guarded)
+    # Last, so it only takes what no route above has: aiohttp's own 404 and 405.
+    app.router.add_route("*", "/{tail:.*}", guard(app[EDGE], "unmatched", unmatched))
     app[STOPPING] = asyncio.Event()
     app.on_shutdown.append(_stop_streams)
     app.cleanup_ctx.append(lifecycle_ctx)
