@@ -112,27 +112,33 @@ class Model(Labelling):
     ) -> list[dict[str, Any]]:
         """Score a batch; remember events that carry an id for later labelling."""
         ids, all_fields = self._parse_events(events, "events")
-        batch = self.featurizer.transform_batch(all_fields, path="events")
-        labels, margins = self.learner.score_batch(batch.indptr, batch.indices, batch.values)
+        views = self.featurizer.transform_batch_views(all_fields, path="events")
+        labels, margins = self.learner.score_lists(*views)
         size = max(64, bytes_hint // max(1, len(events)))
         classes = self.config.classes
-        multi = len(classes) > 2
+        rows = self.learner.rows
+        cache = self.cache
         results: list[dict[str, Any]] = []
-        # Plain lists: indexing numpy arrays per element costs more than converting them once.
-        for i, (event_id, label, row) in enumerate(
-            zip(ids, labels.tolist(), margins.tolist(), strict=True)
-        ):
-            result: dict[str, Any] = {
-                "id": event_id,
-                "label": classes[label],
-                "margin": row[label] if multi else row[0],
-            }
-            if multi:
-                result["margins"] = dict(zip(classes, row, strict=True))
+        for i, event_id in enumerate(ids):
+            label = labels[i]
+            if rows == 1:
+                result: dict[str, Any] = {
+                    "id": event_id,
+                    "label": classes[label],
+                    "margin": margins[i],
+                }
+            else:
+                row = margins[i * rows : (i + 1) * rows]
+                result = {
+                    "id": event_id,
+                    "label": classes[label],
+                    "margin": row[label],
+                    "margins": dict(zip(classes, row, strict=True)),
+                }
             if explain > 0:
                 result["explain"] = self.explain(all_fields[i], explain, f"events[{i}].fields")
             if event_id is not None:
-                self.cache.put(event_id, all_fields[i], label, now, size)
+                cache.put(event_id, all_fields[i], label, now, size)
             results.append(result)
         self.scored += len(results)
         return results
