@@ -143,17 +143,14 @@ class Model(Labelling):
         self.scored += len(results)
         return results
 
-    async def score_shared(
-        self, events: Sequence[Any], *, explain: int, now: float, bytes_hint: int = 0
-    ) -> list[dict[str, Any]]:
-        """Score; with a shared log, also publish events with ids so any replica can label them."""
-        results = self.score(events, explain=explain, now=now, bytes_hint=bytes_hint)
+    async def share(self, events: Sequence[Any], results: list[dict[str, Any]], now: float) -> None:
+        """With a shared log, publish the scored events that carry an id, so that any replica
+        can take a label for them; without one, nothing to do."""
         if self.shared is not None:
             scored = [(r["id"], events[i]["fields"], r["label"])
                       for i, r in enumerate(results) if r["id"] is not None]  # fmt: skip
             if scored:
                 await self.shared.share(scored, now)
-        return results
 
     def explain(self, fields: Mapping[str, Any], k: int, path: str) -> list[dict[str, Any]]:
         """Top-k tokens of one event by |weight x value|, with their text."""
