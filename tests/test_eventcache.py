@@ -261,3 +261,16 @@ def test_entries_are_not_tracked_by_the_garbage_collector() -> None:
     assert len(held) == 2000 and tracked == []  # 1000 ids and 1000 entries
     got = cache.get("e7", 1.0)
     assert got is not None and got.fields == fields and got.served == 1
+
+
+def test_a_refused_pack_leaves_the_reused_packer_empty() -> None:
+    # The cache reuses one msgpack packer; one that failed halfway through an event must not
+    # leave its bytes in front of the next event's.
+    cache = EventCache(ttl_seconds=100.0)
+    good = {"title": "a phone", "price": 3.5}
+    cache.put("bad", {"title": "ok", "code": "\ud800", "n": 2**70}, 0, 0.0, size=10)
+    cache.put("good", good, 1, 0.0, size=10)
+    got = cache.get("good", 1.0)
+    assert got is not None and _same(got.fields, good)
+    bad = cache.get("bad", 1.0)
+    assert bad is not None and bad.fields["code"] == "\ud800" and bad.fields["n"] == 2**70
