@@ -174,7 +174,22 @@ class Model(Labelling):
     ) -> tuple[list[str | None], list[Mapping[str, Any]]]:
         ids: list[str | None] = []
         all_fields: list[Mapping[str, Any]] = []
+        max_fields = self.max_fields
         for i, event in enumerate(events):
+            # The common event, checked inline: a dict with a string id (or none) and a dict of
+            # fields within the limit. Anything else takes the checks below, which say why.
+            if type(event) is dict and len(event) <= 2:
+                event_id = event.get("id")
+                fields = event.get("fields")
+                if (
+                    type(fields) is dict
+                    and len(fields) <= max_fields
+                    and len(event) == (event_id is not None) + 1
+                    and (event_id is None or (type(event_id) is str and 0 < len(event_id) <= 256))
+                ):
+                    ids.append(event_id)
+                    all_fields.append(fields)
+                    continue
             where = f"{path}[{i}]"
             if type(event) is not dict and not isinstance(event, Mapping):
                 raise InvalidEvent("each event must be an object with 'fields'", path=where)
