@@ -103,7 +103,6 @@ def guard(edge: Edge, template: str, handler: Handler) -> Handler:
         finally:
             stats.observe(request.method, status, perf_counter() - started)
 
-    guarded.__name__ = guarded.__qualname__ = getattr(handler, "__name__", "handler")
     return guarded
 
 
