@@ -11,12 +11,9 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
-import gc
 import json
-import logging
 import math
 import time
-from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
@@ -31,17 +28,15 @@ from .errors import (
     NotFound,
     PayloadTooLarge,
     RateLimited,
-    ThresherError,
     Unavailable,
 )
+from .http_background import BACKGROUND, STOPPING, auto_snapshot, lifecycle_ctx, stop_streams
 from .http_edge import EDGE, PRINCIPAL, Edge, Handler, guard, principal, unmatched
 from .http_io import answer, read_body, require_object
 from .lifecycle import ModelRegistry
 from .metrics import HttpMetrics, build_registry
 from .openapi import openapi_document
 from .settings import Settings
-
-logger = logging.getLogger("thresher.http")
 
 SETTINGS = web.AppKey("settings", Settings)
 MODELS = web.AppKey("models", ModelRegistry)
@@ -154,7 +149,7 @@ async def post_labels(request: web.Request) -> web.Response:
     registry = request.app[MODELS]
     ack = await model.label(labels, source=source, now=time.time(), wait=wait)
     if registry.note_applied(model.name, ack.applied):
-        request.app[BACKGROUND].append(asyncio.ensure_future(_auto_snapshot(registry, model.name)))
+        request.app[BACKGROUND].append(asyncio.ensure_future(auto_snapshot(registry, model.name)))
     return answer(
         request,
         {
@@ -303,70 +298,6 @@ async def page(request: web.Request) -> web.StreamResponse:
     return web.FileResponse(path, headers={"Cache-Control": "no-cache"})
 
 
-# -- background work -----------------------------------------------------------------------
-
-BACKGROUND = web.AppKey("background", list)
-FREEZE_GC = web.AppKey("freeze_gc", bool)
-STOPPING = web.AppKey("stopping", asyncio.Event)
-
-
-async def _stop_streams(app: web.Application) -> None:
-    """Ends the page's event streams at shutdown, so they do not hold it to its deadline."""
-    app[STOPPING].set()
-
-
-async def _auto_snapshot(registry: ModelRegistry, name: str) -> None:
-    try:
-        await registry.snapshot(name, automatic=True)
-    except (ThresherError, OSError) as exc:
-        logger.error("automatic snapshot of %s failed: %s", name, exc)
-    except KeyError:
-        pass  # deleted meanwhile
-
-
-async def _snapshot_timer(registry: ModelRegistry, interval: float) -> None:
-    while True:
-        await asyncio.sleep(interval)
-        for name in registry.names():
-            model = registry.models.get(name)
-            info = registry.last_snapshot.get(name)
-            if model is not None and (info is None or info.offset != model.offset):
-                await _auto_snapshot(registry, name)
-
-
-async def lifecycle_ctx(app: web.Application) -> AsyncIterator[None]:
-    """Open models in the background (snapshot + replay) while /readyz says not yet; run the
-    snapshot timer; on shutdown, write final snapshots and close the logs."""
-    registry = app[MODELS]
-    interval = app[SETTINGS].snapshot_interval
-
-    async def start() -> None:
-        try:
-            await registry.open()
-        except Exception:
-            logger.exception("could not open the models in %s", app[SETTINGS].data_dir)
-            raise
-        if app[FREEZE_GC]:
-            # What start-up and recovery built lives as long as the process: moved out of the
-            # collector's sight, it no longer lengthens every full collection while serving.
-            gc.collect()
-            gc.freeze()
-        if interval:
-            app[BACKGROUND].append(asyncio.ensure_future(_snapshot_timer(registry, interval)))
-
-    registry.lock_data_dir()  # fail the start-up at once, not in the background
-    opening = asyncio.ensure_future(start())
-    app[BACKGROUND].append(opening)
-    yield
-    for task in app[BACKGROUND]:
-        task.cancel()
-    for task in app[BACKGROUND]:
-        with contextlib.suppress(asyncio.CancelledError, Exception):
-            await task
-    if registry.ready:
-        await registry.close(snapshot=True)
-
-
 # Every route, each behind the edge (`guard`). aiohttp tries the routes under one path prefix
 # in the order they were added, so the hot ones come first: scoring, then labels.
 ROUTES: list[tuple[str, str, Handler]] = [
@@ -406,7 +337,6 @@ def create_app(
         )
     app = web.Application(client_max_size=settings.max_body_bytes)
     app[SETTINGS] = settings
-    app[FREEZE_GC] = freeze_gc
     models = registry or ModelRegistry(settings)
     app[MODELS] = models
     app[TOKENS] = TokenStore.load(settings.tokens_file) if settings.tokens_file else None  # type: ignore[assignment]
@@ -427,6 +357,8 @@ def create_app(
     # Last, so it only takes what no route above has: aiohttp's own 404 and 405.
     app.router.add_route("*", "/{tail:.*}", guard(app[EDGE], "unmatched", unmatched))
     app[STOPPING] = asyncio.Event()
-    app.on_shutdown.append(_stop_streams)
-    app.cleanup_ctx.append(lifecycle_ctx)
+    app.on_shutdown.append(stop_streams)
+    app.cleanup_ctx.append(
+        lifecycle_ctx(models, snapshot_interval=settings.snapshot_interval, freeze_gc=freeze_gc)
+    )
     return app
