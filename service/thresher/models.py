@@ -117,8 +117,8 @@ class Model(Labelling):
         size = max(64, bytes_hint // max(1, len(events)))
         classes = self.config.classes
         rows = self.learner.rows
-        cache = self.cache
         results: list[dict[str, Any]] = []
+        remembered: list[tuple[str, Mapping[str, Any], int]] = []
         for i, event_id in enumerate(ids):
             label = labels[i]
             if rows == 1:
@@ -138,8 +138,10 @@ class Model(Labelling):
             if explain > 0:
                 result["explain"] = self.explain(all_fields[i], explain, f"events[{i}].fields")
             if event_id is not None:
-                cache.put(event_id, all_fields[i], label, now, size)
+                remembered.append((event_id, all_fields[i], label))
             results.append(result)
+        if remembered:
+            self.cache.put_many(remembered, now, size)
         self.scored += len(results)
         return results
 
