@@ -258,6 +258,7 @@ def paced_rows(paced: dict[str, list[openloop.Paced]] | str) -> list[dict[str, A
             f"out) p99 "
             f"{median([x.late_ms for x in ours]):.2f} ms",
             samples=[x.p99_ms for x in ours],
+            peer_samples=[x.p99_ms for x in floor],
         )
     ]
 
