@@ -85,7 +85,15 @@ def fold(raw: str, focus: str | None = None) -> dict[str, Any]:
         picked = [(name, n / samples) for name, n in counter.most_common() if keep(name)]
         return picked[:TOP]
 
-    skip = ("main (", "run (", "_workload (", "<module> (", "Workload.", "cmd_serve (", "edge (")
+    skip = (
+        "main (",
+        "run (",
+        "_workload (",
+        "<module> (",
+        "Workload.",
+        "cmd_serve (",
+        "guard.<locals>.guarded (",
+    )
     return {
         "samples": samples,
         "self": share(own, lambda name: True),

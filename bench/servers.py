@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import importlib.util
 import json
+import os
 import subprocess
 import sys
 import tempfile
@@ -77,6 +78,14 @@ class Server:
         if self.proc is None:
             raise ServerFailed(f"{self.kind} server is not running")
         return self.proc.pid
+
+    def cpu_seconds(self) -> float:
+        """User + system CPU the server process has used so far (Linux /proc); 0 if unknown."""
+        try:
+            fields = Path(f"/proc/{self.pid}/stat").read_text().rsplit(")", 1)[1].split()
+        except (OSError, IndexError):
+            return 0.0
+        return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
 
     def _wait_ready(self) -> None:
         path = "/readyz" if self.kind == "thresher" else "/healthz"

@@ -317,6 +317,42 @@ def test_every_hash_is_compared(
     assert len(calls) == 4
 
 
+def test_an_accepted_header_is_remembered_and_only_it(
+    store_and_secrets: tuple[TokenStore, dict[str, str]], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    store, found = store_and_secrets
+    header = f"Bearer {found['labeller']}"
+    first = store.authenticate(header)
+    calls: list[int] = []
+    real = hmac.compare_digest
+
+    def counting(a: bytes, b: bytes) -> bool:
+        calls.append(1)
+        return real(a, b)
+
+    monkeypatch.setattr(auth.hmac, "compare_digest", counting)
+    # The same value again is known: no hashing, no comparisons, the same principal.
+    assert store.authenticate(header) is first and calls == []
+    # A value that differs in any way, even one accepted another way, is checked in full.
+    assert store.authenticate(header + " ").name == "labeller" and len(calls) == 4
+    for _ in range(3):
+        with pytest.raises(Unauthorized):
+            store.authenticate(header[:-1])
+    assert len(calls) == 4 + 3 * 4
+    assert header[:-1] not in store._accepted  # refused values are never remembered
+
+
+def test_remembered_headers_are_bounded(
+    store_and_secrets: tuple[TokenStore, dict[str, str]],
+) -> None:
+    store, found = store_and_secrets
+    secret = found["scorer"]
+    # RFC 6750 allows any number of spaces after the scheme: each spelling is its own value.
+    for spaces in range(1, auth.ACCEPTED_KEPT + 50):
+        assert store.authenticate("Bearer" + " " * spaces + secret).name == "scorer"
+    assert len(store._accepted) <= auth.ACCEPTED_KEPT
+
+
 def test_from_json_empty_store_refuses_everyone() -> None:
     store = TokenStore.from_json({"version": 1, "tokens": []})
     with pytest.raises(Unauthorized):

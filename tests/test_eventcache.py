@@ -261,3 +261,43 @@ def test_entries_are_not_tracked_by_the_garbage_collector() -> None:
     assert len(held) == 2000 and tracked == []  # 1000 ids and 1000 entries
     got = cache.get("e7", 1.0)
     assert got is not None and got.fields == fields and got.served == 1
+
+
+def test_a_refused_pack_leaves_the_reused_packer_empty() -> None:
+    # The cache reuses one msgpack packer; one that failed halfway through an event must not
+    # leave its bytes in front of the next event's.
+    cache = EventCache(ttl_seconds=100.0)
+    good = {"title": "a phone", "price": 3.5}
+    cache.put("bad", {"title": "ok", "code": "\ud800", "n": 2**70}, 0, 0.0, size=10)
+    cache.put("good", good, 1, 0.0, size=10)
+    got = cache.get("good", 1.0)
+    assert got is not None and _same(got.fields, good)
+    bad = cache.get("bad", 1.0)
+    assert bad is not None and bad.fields["code"] == "\ud800" and bad.fields["n"] == 2**70
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    st.lists(
+        st.lists(st.tuples(st.sampled_from("abcdefg"), st.integers(0, 2)), max_size=8),
+        max_size=6,
+    ),
+    st.integers(1, 5),
+    st.integers(10, 400),
+    st.integers(0, 150),
+)
+def test_put_many_equals_put_in_turn(
+    batches: list[list[tuple[str, int]]], max_entries: int, max_bytes: int, size: int
+) -> None:
+    # Repeated ids within a batch, bounds overflowing mid-batch, oversize charges and expiry
+    # (each batch 40 s after the last, TTL 100 s): both must end alike, counters included.
+    one = EventCache(max_entries=max_entries, max_bytes=max_bytes, ttl_seconds=100.0)
+    many = EventCache(max_entries=max_entries, max_bytes=max_bytes, ttl_seconds=100.0)
+    for step, batch in enumerate(batches):
+        now = 40.0 * step
+        items = [(event_id, {"n": served, "id": event_id}, served) for event_id, served in batch]
+        for event_id, fields, served in items:
+            one.put(event_id, fields, served, now, size)
+        many.put_many(items, now, size)
+        assert list(one._entries.items()) == list(many._entries.items())
+        assert one.stats() == many.stats()

@@ -74,3 +74,43 @@ def test_one_event_errors_name_the_same_paths_as_a_batch() -> None:
                 model.score(batch, explain=0, now=1.0)
             assert caught.value.path == path, (batch, caught.value)
     assert model.scored == 0
+
+
+@pytest.mark.parametrize("classes", [["fine", "fraud"], ["fine", "fraud", "spam"]])
+def test_scores_equal_the_reference_paths(classes: list[str]) -> None:
+    # Scoring reads the kernels' bytes straight into lists; the numpy reference of the learner
+    # and the Python featurizer must give the very same answers.
+    model = _model(classes, "averaged")
+    events = _train(model, 800)
+    fast = model.score(events, explain=0, now=5.0)
+    model.learner.native = False
+    model.featurizer._native = None
+    assert model.score(events, explain=0, now=5.0) == fast
+
+
+def test_events_outside_the_common_shape_take_the_full_checks() -> None:
+    model = _model(["fine", "fraud"], "classic")
+    model.max_fields = 2
+
+    class Name(str):
+        pass
+
+    accepted = [
+        {"id": None, "fields": {"price": 1}},  # an explicit null id is no id
+        {"id": Name("n1"), "fields": {"price": 1}},  # a str subclass is an id
+        {"fields": {"price": 1, "title": "a"}},
+    ]
+    results = model.score(accepted, explain=0, now=1.0)
+    assert [r["id"] for r in results] == [None, "n1", None]
+    refused = [
+        ({"id": "x" * 257, "fields": {}}, "events[0].id"),
+        ({"id": 7, "fields": {}}, "events[0].id"),
+        ({"fields": {"a": 1, "b": 2, "c": 3}}, "events[0].fields"),
+        ({"fields": {}, "extra": 1}, "events[0]"),
+        ({"id": "x"}, "events[0].fields"),
+        ({"id": "x", "fields": {}, "extra": 1}, "events[0]"),
+    ]
+    for event, path in refused:
+        with pytest.raises(InvalidEvent) as caught:
+            model.score([event], explain=0, now=1.0)
+        assert caught.value.path == path, (event, caught.value)

@@ -60,6 +60,9 @@ CHALLENGE = f'Bearer realm="{REALM}"'
 # RFC 6750 section 2.1: credentials = "Bearer" 1*SP b64token.
 _BEARER_RE = re.compile(r"(?i:Bearer) +([A-Za-z0-9\-._~+/]+=*) *")
 
+# At most this many accepted Authorization values are remembered (TokenStore._accepted).
+ACCEPTED_KEPT = 1024
+
 # The principal of a server without a tokens file: every role, every model, no cap.
 OPEN = Principal("open", frozenset(ROLES))
 
@@ -82,6 +85,11 @@ class TokenStore:
     def __init__(self, entries: Sequence[TokenEntry], *, source: str = "tokens file") -> None:
         self._entries = tuple(entries)
         self.source = source
+        # Authorization values already accepted, and their principals: a client sends the same
+        # header on every request, and checking it anew hashes it and compares the hash with
+        # every entry. Only accepted values are kept, so wrong guesses cannot grow it, and a
+        # lookup hits only on the exact value: it says nothing about how close a guess came.
+        self._accepted: dict[str, Principal] = {}
 
     @classmethod
     def load(cls, path: StrPath) -> TokenStore:
@@ -102,6 +110,10 @@ class TokenStore:
 
     def authenticate(self, authorization_header: str | None) -> Principal:
         """The principal of an ``Authorization`` header value; Unauthorized otherwise."""
+        if authorization_header is not None:
+            known = self._accepted.get(authorization_header)
+            if known is not None:
+                return known
         if authorization_header is None or not authorization_header.strip():
             raise _unauthorized(
                 "missing bearer token; send the header 'Authorization: Bearer <secret>'", None
@@ -132,6 +144,9 @@ class TokenStore:
                 "unknown bearer token; it may have been removed from the tokens file",
                 "invalid_token",
             )
+        if len(self._accepted) >= ACCEPTED_KEPT:
+            self._accepted.clear()  # rare (many spellings of the headers); start afresh
+        self._accepted[authorization_header] = found
         return found
 
 

@@ -1,8 +1,9 @@
 """The HTTP service: ``create_app(settings) -> web.Application``.
 
 Handlers translate between HTTP and `ModelRegistry`/`Model` calls and hold no learning logic.
-The middleware in `http_edge` maps every `ThresherError` (and aiohttp's own HTTP errors) to
-RFC 9457 problem details, counts responses and latency per route, and caps requests in flight;
+The edge in `http_edge`, wrapped around every route's handler, maps every `ThresherError` (and
+aiohttp's own HTTP errors) to RFC 9457 problem details, counts responses and latency per route,
+caps requests in flight and authenticates;
 `http_io` reads bodies and writes answers.
 """
 
@@ -10,12 +11,9 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
-import gc
 import json
-import logging
 import math
 import time
-from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
@@ -30,17 +28,15 @@ from .errors import (
     NotFound,
     PayloadTooLarge,
     RateLimited,
-    ThresherError,
     Unavailable,
 )
-from .http_edge import EDGE, PRINCIPAL, Edge, edge, principal
+from .http_background import BACKGROUND, STOPPING, auto_snapshot, lifecycle_ctx, stop_streams
+from .http_edge import EDGE, PRINCIPAL, Edge, Handler, guard, principal, unmatched
 from .http_io import answer, read_body, require_object
 from .lifecycle import ModelRegistry
 from .metrics import HttpMetrics, build_registry
 from .openapi import openapi_document
 from .settings import Settings
-
-logger = logging.getLogger("thresher.http")
 
 SETTINGS = web.AppKey("settings", Settings)
 MODELS = web.AppKey("models", ModelRegistry)
@@ -49,7 +45,7 @@ LIMITER = web.AppKey("limiter", RateLimiter)
 PROM = web.AppKey("prometheus", CollectorRegistry)
 HTTP_METRICS = web.AppKey("http_metrics", HttpMetrics)
 PAGE_DIR = Path(__file__).with_name("page")
-__all__ = ["EDGE", "PRINCIPAL", "create_app", "edge"]
+__all__ = ["EDGE", "PRINCIPAL", "create_app"]
 
 
 # -- handlers ------------------------------------------------------------------------------
@@ -110,9 +106,10 @@ async def score(request: web.Request) -> web.Response:
     explain = body.get("explain", 0)
     if isinstance(explain, bool) or not isinstance(explain, int) or not 0 <= explain <= 50:
         raise InvalidInput("explain must be an integer from 0 to 50", path="explain")
-    results = await model.score_shared(
-        events, explain=explain, now=time.time(), bytes_hint=request.content_length or 0
-    )
+    now = time.time()
+    results = model.score(events, explain=explain, now=now, bytes_hint=request.content_length or 0)
+    if model.shared is not None:  # skipped, not awaited, on the hot path of a file log
+        await model.share(events, results, now)
     return answer(request, {"results": results})
 
 
@@ -152,7 +149,7 @@ async def post_labels(request: web.Request) -> web.Response:
     registry = request.app[MODELS]
     ack = await model.label(labels, source=source, now=time.time(), wait=wait)
     if registry.note_applied(model.name, ack.applied):
-        request.app[BACKGROUND].append(asyncio.ensure_future(_auto_snapshot(registry, model.name)))
+        request.app[BACKGROUND].append(asyncio.ensure_future(auto_snapshot(registry, model.name)))
     return answer(
         request,
         {
@@ -301,68 +298,28 @@ async def page(request: web.Request) -> web.StreamResponse:
     return web.FileResponse(path, headers={"Cache-Control": "no-cache"})
 
 
-# -- background work -----------------------------------------------------------------------
-
-BACKGROUND = web.AppKey("background", list)
-FREEZE_GC = web.AppKey("freeze_gc", bool)
-STOPPING = web.AppKey("stopping", asyncio.Event)
-
-
-async def _stop_streams(app: web.Application) -> None:
-    """Ends the page's event streams at shutdown, so they do not hold it to its deadline."""
-    app[STOPPING].set()
-
-
-async def _auto_snapshot(registry: ModelRegistry, name: str) -> None:
-    try:
-        await registry.snapshot(name, automatic=True)
-    except (ThresherError, OSError) as exc:
-        logger.error("automatic snapshot of %s failed: %s", name, exc)
-    except KeyError:
-        pass  # deleted meanwhile
-
-
-async def _snapshot_timer(registry: ModelRegistry, interval: float) -> None:
-    while True:
-        await asyncio.sleep(interval)
-        for name in registry.names():
-            model = registry.models.get(name)
-            info = registry.last_snapshot.get(name)
-            if model is not None and (info is None or info.offset != model.offset):
-                await _auto_snapshot(registry, name)
-
-
-async def lifecycle_ctx(app: web.Application) -> AsyncIterator[None]:
-    """Open models in the background (snapshot + replay) while /readyz says not yet; run the
-    snapshot timer; on shutdown, write final snapshots and close the logs."""
-    registry = app[MODELS]
-    interval = app[SETTINGS].snapshot_interval
-
-    async def start() -> None:
-        try:
-            await registry.open()
-        except Exception:
-            logger.exception("could not open the models in %s", app[SETTINGS].data_dir)
-            raise
-        if app[FREEZE_GC]:
-            # What start-up and recovery built lives as long as the process: moved out of the
-            # collector's sight, it no longer lengthens every full collection while serving.
-            gc.collect()
-            gc.freeze()
-        if interval:
-            app[BACKGROUND].append(asyncio.ensure_future(_snapshot_timer(registry, interval)))
-
-    registry.lock_data_dir()  # fail the start-up at once, not in the background
-    opening = asyncio.ensure_future(start())
-    app[BACKGROUND].append(opening)
-    yield
-    for task in app[BACKGROUND]:
-        task.cancel()
-    for task in app[BACKGROUND]:
-        with contextlib.suppress(asyncio.CancelledError, Exception):
-            await task
-    if registry.ready:
-        await registry.close(snapshot=True)
+# Every route, each behind the edge (`guard`). aiohttp tries the routes under one path prefix
+# in the order they were added, so the hot ones come first: scoring, then labels.
+ROUTES: list[tuple[str, str, Handler]] = [
+    ("POST", "/api/models/{model}/score", score),
+    ("POST", "/api/models/{model}/labels", post_labels),
+    ("POST", "/api/models", create_model),
+    ("GET", "/api/models", list_models),
+    ("GET", "/api/models/{model}", get_model),
+    ("DELETE", "/api/models/{model}", delete_model),
+    ("GET", "/api/models/{model}/quality", quality),
+    ("GET", "/api/models/{model}/snapshots", list_snapshots),
+    ("POST", "/api/models/{model}/snapshots", take_snapshot),
+    ("POST", "/api/models/{model}/snapshots/{generation}/restore", restore_snapshot),
+    ("POST", "/api/models/{model}/rebuild", rebuild),
+    ("GET", "/api/events", events_stream),
+    ("GET", "/api/openapi.json", openapi),
+    ("GET", "/metrics", metrics),
+    ("GET", "/healthz", healthz),
+    ("GET", "/readyz", readyz),
+    ("GET", "/", page),
+    ("GET", "/page/{file}", page),
+]
 
 
 def create_app(
@@ -378,9 +335,8 @@ def create_app(
             f"refusing to listen on {settings.host} without --tokens-file; create tokens with "
             "`thresher token new`, or pass --insecure to accept anyone who can reach the port"
         )
-    app = web.Application(middlewares=[edge], client_max_size=settings.max_body_bytes)
+    app = web.Application(client_max_size=settings.max_body_bytes)
     app[SETTINGS] = settings
-    app[FREEZE_GC] = freeze_gc
     models = registry or ModelRegistry(settings)
     app[MODELS] = models
     app[TOKENS] = TokenStore.load(settings.tokens_file) if settings.tokens_file else None  # type: ignore[assignment]
@@ -393,26 +349,16 @@ def create_app(
         max_inflight=settings.max_inflight,
     )
     app[BACKGROUND] = []
-    r = app.router
-    r.add_post("/api/models", create_model)
-    r.add_get("/api/models", list_models)
-    r.add_get("/api/models/{model}", get_model)
-    r.add_delete("/api/models/{model}", delete_model)
-    r.add_post("/api/models/{model}/score", score)
-    r.add_post("/api/models/{model}/labels", post_labels)
-    r.add_get("/api/models/{model}/quality", quality)
-    r.add_get("/api/models/{model}/snapshots", list_snapshots)
-    r.add_post("/api/models/{model}/snapshots", take_snapshot)
-    r.add_post("/api/models/{model}/snapshots/{generation}/restore", restore_snapshot)
-    r.add_post("/api/models/{model}/rebuild", rebuild)
-    r.add_get("/api/events", events_stream)
-    r.add_get("/api/openapi.json", openapi)
-    r.add_get("/metrics", metrics)
-    r.add_get("/healthz", healthz)
-    r.add_get("/readyz", readyz)
-    r.add_get("/", page)
-    r.add_get("/page/{file}", page)
+    for method, path, handler in ROUTES:
+        guarded = guard(app[EDGE], path, handler)
+        if method == "GET":
+            app.router.add_route("HEAD", path, guarded)  # as aiohttp's add_get does
+        app.router.add_route(method, path, guarded)
+    # Last, so it only takes what no route above has: aiohttp's own 404 and 405.
+    app.router.add_route("*", "/{tail:.*}", guard(app[EDGE], "unmatched", unmatched))
     app[STOPPING] = asyncio.Event()
-    app.on_shutdown.append(_stop_streams)
-    app.cleanup_ctx.append(lifecycle_ctx)
+    app.on_shutdown.append(stop_streams)
+    app.cleanup_ctx.append(
+        lifecycle_ctx(models, snapshot_interval=settings.snapshot_interval, freeze_gc=freeze_gc)
+    )
     return app

@@ -1,16 +1,20 @@
-"""The one middleware every request passes: problem details, request metrics, the in-flight cap
-and authentication.
+"""The edge every request passes: problem details, request metrics, the in-flight cap and
+authentication.
 
-It runs on every request, so what it needs is gathered once per app in an `Edge` (one app-key
-lookup instead of five), and the per-route metric children are cached in `HttpMetrics`.
+It wraps each route's handler when the route is added (`guard`), not as an aiohttp
+middleware: an app with any middleware pays for aiohttp's middleware chain on every request
+(two extra coroutine frames and a cache lookup), and the route's template, its metric counts
+and whether it needs a token are then worked out once per route instead of once per request.
+A catch-all route (`unmatched`) turns what aiohttp would answer itself, 404 and 405, into
+problem details.
 """
 
 from __future__ import annotations
 
 import asyncio
 import logging
-import time
 from collections.abc import Awaitable, Callable
+from time import perf_counter
 
 from aiohttp import web
 
@@ -28,7 +32,7 @@ OPEN_API_DOCUMENT = "/api/openapi.json"
 
 
 class Edge:
-    """What the middleware reads on every request; ``inflight`` counts requests in progress."""
+    """What the edge reads on every request; ``inflight`` counts requests in progress."""
 
     __slots__ = ("inflight", "max_inflight", "metrics", "models", "tokens")
 
@@ -46,11 +50,9 @@ class Edge:
         self.max_inflight = max_inflight
         self.inflight = 0
 
-    def authenticate(self, request: web.Request, template: str) -> Principal:
-        """The request's principal; /api/ routes need a token (when there is a tokens file)
-        and a server that has finished recovering."""
-        if not template.startswith("/api/") or template == OPEN_API_DOCUMENT:
-            return OPEN
+    def authenticate(self, request: web.Request) -> Principal:
+        """The principal of a request to an /api/ route: it needs a token (when there is a
+        tokens file) and a server that has finished recovering."""
         tokens = self.tokens
         who = OPEN if tokens is None else tokens.authenticate(request.headers.get("Authorization"))
         if not self.models.ready:
@@ -63,42 +65,57 @@ class Edge:
 EDGE = web.AppKey("edge", Edge)
 
 
-@web.middleware
-async def edge(request: web.Request, handler: Handler) -> web.StreamResponse:
-    """Problem details, request metrics, in-flight cap, authentication."""
-    state = request.app[EDGE]
-    resource = request.match_info.route.resource
-    template = resource.canonical if resource is not None else "unmatched"
-    started = time.perf_counter()
-    status = 500
-    try:
-        if state.inflight >= state.max_inflight and template.startswith("/api/"):
-            raise Unavailable("too many requests in progress; retry shortly", retry_after=1.0)
-        state.inflight += 1
-        try:
-            request[PRINCIPAL] = state.authenticate(request, template)
-            response = await handler(request)
-        finally:
-            state.inflight -= 1
-        status = response.status
-        return response
-    except ThresherError as error:
-        status = error.status
-        return problem(error)
-    except web.HTTPException as exc:
-        status = exc.status
-        return _http_problem(request, exc)
-    except (asyncio.CancelledError, ConnectionResetError):
-        status = 499
-        raise
-    except Exception:
-        logger.exception("unhandled error in %s %s", request.method, request.path)
+def guard(edge: Edge, template: str, handler: Handler) -> Handler:
+    """``handler`` behind the edge, for the route ``template`` (its metric label)."""
+    capped = template.startswith("/api/")
+    checked = capped and template != OPEN_API_DOCUMENT
+    stats = edge.metrics.route(template)
+
+    async def guarded(request: web.Request) -> web.StreamResponse:
+        started = perf_counter()
         status = 500
-        error = ThresherError("internal error; the server log has the details")
-        error.status, error.slug, error.title = 500, "internal", "Internal error"
-        return problem(error)
-    finally:
-        state.metrics.observe(template, request.method, status, time.perf_counter() - started)
+        try:
+            if capped and edge.inflight >= edge.max_inflight:
+                raise Unavailable("too many requests in progress; retry shortly", retry_after=1.0)
+            edge.inflight += 1
+            try:
+                request[PRINCIPAL] = edge.authenticate(request) if checked else OPEN
+                response = await handler(request)
+            finally:
+                edge.inflight -= 1
+            status = response.status
+            return response
+        except ThresherError as error:
+            status = error.status
+            return problem(error)
+        except web.HTTPException as exc:
+            status = exc.status
+            return _http_problem(request, exc)
+        except (asyncio.CancelledError, ConnectionResetError):
+            status = 499
+            raise
+        except Exception:
+            logger.exception("unhandled error in %s %s", request.method, request.path)
+            status = 500
+            error = ThresherError("internal error; the server log has the details")
+            error.status, error.slug, error.title = 500, "internal", "Internal error"
+            return problem(error)
+        finally:
+            stats.observe(request.method, status, perf_counter() - started)
+
+    return guarded
+
+
+async def unmatched(request: web.Request) -> web.StreamResponse:
+    """The catch-all route: 405 with ``Allow`` when another route has the path, else 404."""
+    allowed: set[str] = set()
+    mine = request.match_info.route.resource
+    for resource in request.app.router.resources():
+        if resource is not mine:
+            allowed |= (await resource.resolve(request))[1]
+    if allowed:
+        raise web.HTTPMethodNotAllowed(request.method, allowed)
+    raise web.HTTPNotFound()
 
 
 def _http_problem(request: web.Request, exc: web.HTTPException) -> web.Response:

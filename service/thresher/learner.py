@@ -169,6 +169,21 @@ class Learner:
         served = serve_margins(self.weights_, self.accum_, idx, x, segments(ptr), n, seen)
         return labels_of(served), served
 
+    def score_lists(self, indptr: Any, indices: Any, values: Any) -> tuple[list[int], list[float]]:
+        """:meth:`score_batch` as plain lists: labels[n] and the margins row after row (n * rows).
+
+        The same numbers; for a handful of events, reading the kernel's bytes straight into
+        lists is cheaper than making numpy arrays and converting them.
+        """
+        if _learner is not None and self.native:
+            made = _learner.margins(self.weights_, self.accum_, float(self.seen), self.rows,
+                                    indptr, indices, values)  # fmt: skip
+            if made is not None:
+                labels, margins = memoryview(made[0]).cast("q"), memoryview(made[1]).cast("d")
+                return labels.tolist(), margins.tolist()
+        labels, margins = self.score_batch(indptr, indices, values)
+        return labels.tolist(), margins.ravel().tolist()
+
     def margins(self, indices: Any, values: Any) -> np.ndarray:
         """Served margins float64[rows] of one row."""
         ptr = np.array([0, np.asarray(indices).size], dtype=np.int64)

@@ -8,13 +8,16 @@ time by `ModelCollector`, so the learning core never carries metric calls.
 from __future__ import annotations
 
 import math
+import time
+from bisect import bisect_left
 from collections.abc import Iterator
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
-from prometheus_client import CollectorRegistry, Counter, Histogram
+from prometheus_client import CollectorRegistry
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.process_collector import ProcessCollector
 from prometheus_client.registry import Collector
+from prometheus_client.utils import floatToGoString
 
 if TYPE_CHECKING:
     from .lifecycle import ModelRegistry
@@ -40,38 +43,97 @@ LATENCY_BUCKETS = (
 HASH_LOAD_WARNING = 0.1
 
 
-class HttpMetrics:
-    """Per-route request latency and responses by status."""
+class RouteStats:
+    """One route's counts: a latency histogram and responses by status, for each method.
+
+    Plain integers and floats, no locks: every request and every scrape runs on the event
+    loop's thread, and a prometheus_client child takes a lock per sample (three per request).
+    """
+
+    __slots__ = ("by_method", "route")
+
+    def __init__(self, route: str) -> None:
+        self.route = route
+        self.by_method: dict[str, MethodStats] = {}
+
+    def observe(self, method: str, status: int, seconds: float) -> None:
+        """Count one response of this route and observe how long it took."""
+        stats = self.by_method.get(method)
+        if stats is None:
+            stats = self.by_method[method] = MethodStats()
+        stats.buckets[bisect_left(LATENCY_BUCKETS, seconds)] += 1
+        stats.total += seconds
+        statuses = stats.statuses
+        if status in statuses:
+            statuses[status] += 1
+        else:
+            statuses[status] = 1
+            stats.created[status] = time.time()
+
+
+class MethodStats:
+    """One route and method: bucket counts (the last is +Inf), their sum, responses by status,
+    and when each series began (Prometheus's ``_created``)."""
+
+    __slots__ = ("buckets", "created", "since", "statuses", "total")
+
+    def __init__(self) -> None:
+        self.buckets = [0] * (len(LATENCY_BUCKETS) + 1)
+        self.total = 0.0
+        self.statuses: dict[int, int] = {}
+        self.created: dict[int, float] = {}
+        self.since = time.time()
+
+
+class HttpMetrics(Collector):
+    """Per-route request latency and responses by status, read at scrape time."""
 
     def __init__(self, registry: CollectorRegistry) -> None:
-        self.duration = Histogram(
-            "thresher_http_request_duration_seconds",
-            "Time from request received to response ready, by route template.",
-            ["route", "method"],
-            buckets=LATENCY_BUCKETS,
-            registry=registry,
-        )
-        self.responses = Counter(
-            "thresher_http_responses",
-            "HTTP responses sent, by route template and status code.",
-            ["route", "method", "status"],
-            registry=registry,
-        )
-        # labels() hashes and locks on every call; the children of a route are cached here.
-        self._children: dict[tuple[str, str], tuple[Any, dict[int, Any]]] = {}
+        self.routes: dict[str, RouteStats] = {}
+        registry.register(self)
+
+    def route(self, template: str) -> RouteStats:
+        """The counts of one route template, made on first use."""
+        stats = self.routes.get(template)
+        if stats is None:
+            stats = self.routes[template] = RouteStats(template)
+        return stats
 
     def observe(self, route: str, method: str, status: int, seconds: float) -> None:
         """Count one response of ``route`` and observe how long it took."""
-        children = self._children.get((route, method))
-        if children is None:
-            children = (self.duration.labels(route, method), {})
-            self._children[(route, method)] = children
-        duration, by_status = children
-        duration.observe(seconds)
-        counter = by_status.get(status)
-        if counter is None:
-            counter = by_status[status] = self.responses.labels(route, method, str(status))
-        counter.inc()
+        self.route(route).observe(method, status, seconds)
+
+    def collect(self) -> Iterator[Metric]:
+        # The same families and samples the prometheus_client Histogram and Counter wrote.
+        duration = Metric(
+            "thresher_http_request_duration_seconds",
+            "Time from request received to response ready, by route template.",
+            "histogram",
+        )
+        responses = CounterMetricFamily(
+            "thresher_http_responses",
+            "HTTP responses sent, by route template and status code.",
+            labels=["route", "method", "status"],
+        )
+        bounds = [*map(floatToGoString, LATENCY_BUCKETS), "+Inf"]
+        for route, stats in list(self.routes.items()):
+            for method, method_stats in list(stats.by_method.items()):
+                labels = {"route": route, "method": method}
+                name = duration.name
+                running = 0
+                for bound, count in zip(bounds, method_stats.buckets, strict=True):
+                    running += count
+                    duration.add_sample(f"{name}_bucket", {**labels, "le": bound}, running)
+                duration.add_sample(f"{name}_count", labels, running)
+                duration.add_sample(f"{name}_sum", labels, method_stats.total)
+                duration.add_sample(f"{name}_created", labels, method_stats.since)
+                created = method_stats.created
+                for status, count in list(method_stats.statuses.items()):
+                    responses.add_metric(
+                        [route, method, str(status)], count, created=created[status]
+                    )
+        yield duration
+        yield responses
 
 
 class ModelCollector(Collector):

@@ -121,42 +121,47 @@ class Model(Labelling):
     ) -> list[dict[str, Any]]:
         """Score a batch; remember events that carry an id for later labelling."""
         ids, all_fields = self._parse_events(events, "events")
-        batch = self.featurizer.transform_batch(all_fields, path="events")
-        labels, margins = self.learner.score_batch(batch.indptr, batch.indices, batch.values)
+        views = self.featurizer.transform_batch_views(all_fields, path="events")
+        labels, margins = self.learner.score_lists(*views)
         size = max(64, bytes_hint // max(1, len(events)))
         classes = self.config.classes
-        multi = len(classes) > 2
+        rows = self.learner.rows
         results: list[dict[str, Any]] = []
-        # Plain lists: indexing numpy arrays per element costs more than converting them once.
-        for i, (event_id, label, row) in enumerate(
-            zip(ids, labels.tolist(), margins.tolist(), strict=True)
-        ):
-            result: dict[str, Any] = {
-                "id": event_id,
-                "label": classes[label],
-                "margin": row[label] if multi else row[0],
-            }
-            if multi:
-                result["margins"] = dict(zip(classes, row, strict=True))
+        remembered: list[tuple[str, Mapping[str, Any], int]] = []
+        for i, event_id in enumerate(ids):
+            label = labels[i]
+            if rows == 1:
+                result: dict[str, Any] = {
+                    "id": event_id,
+                    "label": classes[label],
+                    "margin": margins[i],
+                }
+            else:
+                row = margins[i * rows : (i + 1) * rows]
+                result = {
+                    "id": event_id,
+                    "label": classes[label],
+                    "margin": row[label],
+                    "margins": dict(zip(classes, row, strict=True)),
+                }
             if explain > 0:
                 result["explain"] = self.explain(all_fields[i], explain, f"events[{i}].fields")
             if event_id is not None:
-                self.cache.put(event_id, all_fields[i], label, now, size)
+                remembered.append((event_id, all_fields[i], label))
             results.append(result)
+        if remembered:
+            self.cache.put_many(remembered, now, size)
         self.scored += len(results)
         return results
 
-    async def score_shared(
-        self, events: Sequence[Any], *, explain: int, now: float, bytes_hint: int = 0
-    ) -> list[dict[str, Any]]:
-        """Score; with a shared log, also publish events with ids so any replica can label them."""
-        results = self.score(events, explain=explain, now=now, bytes_hint=bytes_hint)
+    async def share(self, events: Sequence[Any], results: list[dict[str, Any]], now: float) -> None:
+        """With a shared log, publish the scored events that carry an id, so that any replica
+        can take a label for them; without one, nothing to do."""
         if self.shared is not None:
             scored = [(r["id"], events[i]["fields"], r["label"])
                       for i, r in enumerate(results) if r["id"] is not None]  # fmt: skip
             if scored:
                 await self.shared.share(scored, now)
-        return results
 
     def explain(self, fields: Mapping[str, Any], k: int, path: str) -> list[dict[str, Any]]:
         """Top-k tokens of one event by |weight x value|, with their text."""
@@ -180,7 +185,22 @@ class Model(Labelling):
     ) -> tuple[list[str | None], list[Mapping[str, Any]]]:
         ids: list[str | None] = []
         all_fields: list[Mapping[str, Any]] = []
+        max_fields = self.max_fields
         for i, event in enumerate(events):
+            # The common event, checked inline: a dict with a string id (or none) and a dict of
+            # fields within the limit. Anything else takes the checks below, which say why.
+            if type(event) is dict and len(event) <= 2:
+                event_id = event.get("id")
+                fields = event.get("fields")
+                if (
+                    type(fields) is dict
+                    and len(fields) <= max_fields
+                    and len(event) == (event_id is not None) + 1
+                    and (event_id is None or (type(event_id) is str and 0 < len(event_id) <= 256))
+                ):
+                    ids.append(event_id)
+                    all_fields.append(fields)
+                    continue
             where = f"{path}[{i}]"
             if type(event) is not dict and not isinstance(event, Mapping):
                 raise InvalidEvent("each event must be an object with 'fields'", path=where)
