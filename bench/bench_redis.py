@@ -146,7 +146,13 @@ def _labels(n: int, seed: int, prefix: str) -> list[dict[str, Any]]:
 
 
 def _payloads(items: list[dict[str, Any]]) -> list[bytes]:
-    return [records.encode({**x, "source": "bench", "served": None, "time": 1.0}) for x in items]
+    """The records as a label request writes them: fields packed, with the rows it made."""
+    model = _model(None)
+    batch = model.featurizer.transform_batch([x["fields"] for x in items])
+    pack = records.fields_packer()
+    recs = [{"id": x["id"], "label": x["label"], "source": "bench", "served": None,
+             "time": 1.0, "packed": pack(x["fields"])} for x in items]  # fmt: skip
+    return records.encode_many(recs, model.row_key, batch, range(len(items)))
 
 
 async def _workers(batches: list[Any], work: Callable[[Any], Awaitable[None]], n: int) -> float:
@@ -171,7 +177,7 @@ async def _storage_rows(state: RedisState, tmp: Path, n: int) -> list[Row]:
     """Admission, stream read and catch-up figures, in this process."""
     items = _labels(n, seed=3, prefix="a")
     payloads = _payloads(items)
-    keys = [(x["id"], x["label"]) for x in items]
+    keys = [(x["id"], x["label"], "bench") for x in items]
     spans = [(i, i + 100) for i in range(0, n, 100)]
     token = await state.define("bench", {})
     log = await state.open_log("bench", token)

@@ -16,7 +16,6 @@ from typing import Any
 
 import numpy as np
 
-from thresher import records
 from thresher.lifecycle import REPLAY_CHUNK, ModelRegistry
 from thresher.settings import Settings
 
@@ -119,28 +118,12 @@ def snapshot_rows(mode: Mode) -> list[dict[str, Any]]:
 
 
 async def _write_log(data_dir: Path, n: int) -> None:
-    """A model whose log holds ``n`` label records and which has no snapshot."""
+    """A model whose log holds ``n`` label records, written by label requests, and which has
+    no snapshot."""
     registry = ModelRegistry(_settings(data_dir))
     await registry.open()
     await registry.create(model_body(MODEL, rule="classic"))
-    log = registry.get(MODEL).log
-    listings = demo_events(n, seed=31)
-    now = time.time()
-    for lo in range(0, n, 2000):
-        payloads = [
-            records.encode(
-                {
-                    "id": event_id,
-                    "label": label,
-                    "fields": fields,
-                    "source": "bench",
-                    "served": None,
-                    "time": now,
-                }
-            )
-            for event_id, fields, label in listings[lo : lo + 2000]
-        ]
-        await log.append(payloads)
+    await _label(registry, n, seed=31)
     await registry.close(snapshot=False)
 
 

@@ -65,9 +65,20 @@ async def read_all(log: LabelLog, start: int = 0) -> list[tuple[int, bytes]]:
 # -- records ------------------------------------------------------------------------------
 
 
+def _six(record: dict[str, object]) -> dict[str, object]:
+    """A decoded record's six keys, with its fields unpacked."""
+    return {**{k: record[k] for k in RECORD if k != "fields"}, "fields": records.fields(record)}
+
+
 def test_record_round_trip_and_wire_form() -> None:
     data = records.encode(RECORD)
-    assert records.decode(data) == RECORD
+    assert _six(records.decode(data)) == RECORD
+    # Version 2 is a 10-element array (fixarray 0x9a) led by its version, with the fields as a
+    # bin holding their own msgpack map.
+    assert data[:2] == b"\x9a\x02"
+    array = msgpack.unpackb(data)
+    assert msgpack.unpackb(array[6]) == RECORD["fields"]
+    assert array[7:] == [b"", b"", b""]  # no row: the reader featurizes the fields
     # The msgpack spec's own example (msgpack.org front page, from memory):
     # {"compact": true, "schema": 0} packs to 82 a7 "compact" c3 a6 "schema" 00.
     assert msgpack.unpackb(bytes.fromhex("82a7636f6d70616374c3a6736368656d6100")) == {
@@ -78,6 +89,8 @@ def test_record_round_trip_and_wire_form() -> None:
     assert b"\xa5fraud" in data
     whole = records.decode(records.encode({**RECORD, "time": 12}))
     assert isinstance(whole["time"], float) and whole["time"] == 12.0
+    # Version 1, the map of the six keys, is still read as it always was.
+    assert records.decode(msgpack.packb(RECORD, use_bin_type=True)) == RECORD
 
 
 @pytest.mark.parametrize(

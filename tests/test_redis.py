@@ -19,13 +19,13 @@ from pathlib import Path
 from typing import Any
 
 import aiohttp
-import msgpack
 import pytest
 import redis
 from aiohttp import web
 from aiohttp.test_utils import TestServer
 
 from conftest import ServerProcess, free_port, require_binary
+from thresher import records
 from thresher.errors import LogUnavailable, NotFound
 from thresher.http import create_app
 from thresher.redislog import _labels_from
@@ -162,7 +162,7 @@ def stream(server: RedisServer, model: str) -> list[tuple[int, dict[str, Any]]]:
     """The model's (offset, record) pairs in stream order, read straight from Redis."""
     with server.client() as client:
         entries = client.xrange(stream_key(server, model))
-    return [(int(i.split(b"-")[1]) - 1, msgpack.unpackb(d[b"d"])) for i, d in entries]
+    return [(int(i.split(b"-")[1]) - 1, records.decode(d[b"d"])) for i, d in entries]
 
 
 async def converged(
@@ -508,17 +508,17 @@ async def test_append_script_is_atomic_dense_and_exactly_once(
         token = await state.define("unit", {"name": "unit"})
         log = await state.open_log("unit", token)
         pay = [b"p%d" % i for i in range(4)]
-        first, dups, conflict = await log.admit(pay[:2], [("a", "x"), ("b", "y")])
+        first, dups, conflict = await log.admit(pay[:2], [("a", "x", "s"), ("b", "y", "s")])
         assert (first, dups, conflict, log.head()) == (0, [], None, 2)
         # A conflict anywhere refuses the whole batch: nothing of it is appended.
-        first, dups, conflict = await log.admit(pay[2:], [("c", "x"), ("a", "y")])
+        first, dups, conflict = await log.admit(pay[2:], [("c", "x", "s"), ("a", "y", "s")])
         assert (first, dups, conflict) == (-1, [], (1, "x"))
-        first, dups, conflict = await log.admit(pay[2:], [("a", "x"), (None, "")])
+        first, dups, conflict = await log.admit(pay[2:], [("a", "x", "s"), (None, "", "s")])
         assert (first, dups, conflict, log.head()) == (2, [0], None, 3)
         assert [o async for o, _ in log.read(0)] == [0, 1, 2]
         await state.undefine("unit", token)
         with pytest.raises(NotFound):  # a deleted model's appends are refused, not revived
-            await log.admit(pay[:1], [("z", "x")])
+            await log.admit(pay[:1], [("z", "x", "s")])
     finally:
         await state.close()
     with pytest.raises(LogUnavailable):  # nothing listens on a fresh free port

@@ -13,11 +13,11 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import functools
 import gc
 import json
 import logging
-from collections import deque
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Iterator, Sequence
 from typing import TYPE_CHECKING, Any, NamedTuple
 
 import numpy as np
@@ -27,24 +27,15 @@ from .errors import InvalidEvent
 from .features import Batch, Featurizer, SparseRow
 from .learner import Learner
 from .learner_kernels import served_weights
+from .mistakes import RECENT_MISTAKES as RECENT_MISTAKES
+from .mistakes import Mistakes, Unexplained
 from .quality import Quality
 
 if TYPE_CHECKING:
     from .models import ModelConfig
 
 drift_logger = logging.getLogger("thresher.drift")
-RECENT_MISTAKES = 50
 OUTCOMES_KEPT = 1 << 17  # applied offsets whose mistake flag a waiting label request can read
-
-
-class _Unexplained(NamedTuple):
-    """A recent mistake whose top tokens are worked out when they are first read."""
-
-    entry: dict[str, Any]
-    fields: Mapping[str, Any]
-    row: SparseRow
-    before: np.ndarray  # (rows, nnz) served weights behind the prediction
-    predicted: int
 
 
 class BatchRow(NamedTuple):
@@ -54,7 +45,7 @@ class BatchRow(NamedTuple):
     i: int
 
 
-class Applying:
+class Applying(Mistakes):
     """Log-order learning of a model; its state is set up by ``Model.__init__``."""
 
     name: str
@@ -71,28 +62,14 @@ class Applying:
     _outcomes: dict[int, bool]
     _rows: dict[int, Any]
     _waiters: dict[int, asyncio.Future[None]]
-    _recent: deque[dict[str, Any]]
-    _unexplained: deque[_Unexplained]
 
-    @property
-    def recent_mistakes(self) -> deque[dict[str, Any]]:
-        """The last RECENT_MISTAKES mistakes, newest first, each with its top tokens.
-
-        A batch leaves its mistakes' tokens to be worked out here, when they are first read:
-        most are pushed out by later mistakes before anyone looks (a replay makes thousands).
-        """
-        if self._unexplained:
-            shown = {id(entry) for entry in self._recent}
-            for entry, fields, row, before, predicted in self._unexplained:
-                if id(entry) in shown:
-                    entry["top"] = self._explain_before(fields, row, before, predicted)
-            self._unexplained.clear()
-        return self._recent
-
-    @recent_mistakes.setter
-    def recent_mistakes(self, entries: deque[dict[str, Any]]) -> None:
-        self._recent = entries
-        self._unexplained = deque(maxlen=entries.maxlen)
+    @functools.cached_property
+    def row_key(self) -> bytes:
+        """The fingerprint of this model's featurizer, under which its records store rows."""
+        config = self.config
+        return records.fingerprint(
+            self.featurizer.spec.to_json(), bits=config.bits, seed=config.seed, signed=config.signed
+        )
 
     def apply(self, offset: int, record: dict[str, Any], row: Any = None) -> None:
         """Apply the record at ``offset`` (must be the next one) to learner and counters."""
@@ -103,6 +80,8 @@ class Applying:
             row = self._rows.pop(offset, None)
         if isinstance(row, BatchRow):
             row = row.batch.row(row.i)
+        elif row is None and record.get("row") is not None:
+            row = SparseRow(*records.row(record))
         if record["source"] not in self.exclude_sources:
             self._learn(record, row)
         self._applied_through(offset, [record])
@@ -151,9 +130,7 @@ class Applying:
                 predicted = int(steps.predicted[j])
                 entry = self._mistake_entry(run[j], predicted, steps.margins[j], [])
                 self._recent.appendleft(entry)
-                self._unexplained.append(
-                    _Unexplained(entry, run[j]["fields"], row, before, predicted)
-                )
+                self._unexplained.append(Unexplained(entry, run[j], row, before, predicted))
         self.offset = first + len(recs)
         self._applied_through(first, recs)
 
@@ -164,7 +141,7 @@ class Applying:
         before it are applied, as applying them one by one would.
         """
         with _collector_paused():
-            recs, error = records.decode_many(payloads)
+            recs, error = records.decode_many(payloads, self.row_key, self.config.bits)
             self.apply_batch(first, recs)
             del recs  # freed by reference counting while the collector is still paused
         if error is not None:
@@ -173,28 +150,37 @@ class Applying:
     def _featurize_run(
         self, recs: Sequence[dict[str, Any]], given: list[Any], learned: list[int], ys: list[int]
     ) -> tuple[list[int], list[int], tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        """The learned records' rows as one CSR batch; records whose fields fail are dropped."""
-        missing = [k for k in learned if given[k] is None]
+        """The learned records' rows as one CSR batch; records whose fields fail are dropped.
+
+        A row comes from the request that featurized it, else from the record (made under this
+        model's featurizer, see `records`), else the record's fields are featurized now.
+        """
+        rows = dict(zip(learned, (given[k] for k in learned), strict=True))
+        stored = [k for k in learned if rows[k] is None and recs[k].get("row") is not None]
+        if len(stored) == len(learned):  # replay and the follower: every row was stored
+            return learned, ys, records.stack_rows([recs[k] for k in learned])
+        for k in stored:
+            rows[k] = SparseRow(*records.row(recs[k]))
+        missing = [k for k in learned if rows[k] is None]
         if len(missing) == len(learned):
             try:
                 batch = self.featurizer.transform_batch(
-                    [recs[k]["fields"] for k in learned], path="fields"
+                    [records.fields(recs[k]) for k in learned], path="fields"
                 )
             except InvalidEvent:
                 pass  # accepted under the same spec, so only a foreign log gets here
             else:
                 return learned, ys, (batch.indptr, batch.indices, batch.values)
-        rows = dict(zip(learned, (given[k] for k in learned), strict=True))
         if missing:
             try:
                 batch = self.featurizer.transform_batch(
-                    [recs[k]["fields"] for k in missing], path="fields"
+                    [records.fields(recs[k]) for k in missing], path="fields"
                 )
                 rows.update((k, BatchRow(batch, i)) for i, k in enumerate(missing))
             except InvalidEvent:
                 for k in missing:
                     try:
-                        rows[k] = self.featurizer.transform(recs[k]["fields"], path="fields")
+                        rows[k] = self.featurizer.transform(records.fields(recs[k]), path="fields")
                     except InvalidEvent:
                         rows[k] = None  # skipped, as `apply` skips it
         kept = [(k, y) for k, y in zip(learned, ys, strict=True) if rows[k] is not None]
@@ -254,7 +240,7 @@ class Applying:
             return
         if row is None:
             try:
-                row = self.featurizer.transform(record["fields"], path="fields")
+                row = self.featurizer.transform(records.fields(record), path="fields")
             except InvalidEvent:
                 return  # accepted under the same spec, so unreachable unless the log is foreign
         # Explain a mistake with the weights that made it: gather them before the update
@@ -293,7 +279,7 @@ class Applying:
             record["_mistake"] = True
             # A batch keeps weights only for mistakes that stay among the recent ones.
             if before is not None:
-                top = self._explain_before(record["fields"], row, before, predicted)
+                top = self._explain_before(record, row, before, predicted)
                 self.recent_mistakes.appendleft(
                     self._mistake_entry(record, predicted, margins, top)
                 )
@@ -309,50 +295,6 @@ class Applying:
             "alarms": report["drift"]["alarms"],
         }
         drift_logger.warning("drift alarm %s", json.dumps(event, sort_keys=True))
-
-    def _explain_before(
-        self, fields: Mapping[str, Any], row: Any, before: np.ndarray, predicted: int
-    ) -> list[dict[str, Any]]:
-        """Top tokens of a mistaken prediction, by |weight x value| under the weights used."""
-        weights = before[predicted if before.shape[0] > 1 else 0]
-        values = np.asarray(row.values, dtype=np.float64)
-        contrib = weights * values
-        order = np.lexsort((row.indices, -np.abs(contrib)))
-        order = order[contrib[order] != 0][:5]
-        if order.size == 0:
-            return []
-        try:
-            _, tokens = self.featurizer.transform_with_tokens(fields, path="fields")
-        except InvalidEvent:
-            return []
-        names: dict[int, str] = {}
-        for token, index, _value in tokens:
-            names.setdefault(int(index), token)
-        return [
-            {
-                "token": names.get(int(row.indices[i]), f"#{int(row.indices[i])}"),
-                "weight": float(weights[i]),
-                "value": float(values[i]),
-                "contribution": float(contrib[i]),
-            }
-            for i in order
-        ]
-
-    def _mistake_entry(
-        self, record: dict[str, Any], predicted: int, margins: Any, top: list[dict[str, Any]]
-    ) -> dict[str, Any]:
-        predicted = int(predicted)
-        margins = np.asarray(margins, dtype=np.float64)
-        margin = float(margins[predicted] if margins.size > 1 else margins[0])
-        return {
-            "id": record.get("id"),
-            "label": record["label"],
-            "predicted": self.config.classes[predicted],
-            "margin": margin,
-            "source": record["source"],
-            "time": record.get("time"),
-            "top": top,
-        }
 
 
 @contextlib.contextmanager

@@ -20,9 +20,10 @@ if TYPE_CHECKING:
 WAIT_MS = 1000  # how long an append waits for --redis-wait-replicas confirmations
 ADMITTED, CONFLICT, GONE, FROZEN = 0, 1, 2, 3  # the first element of the script's answer
 
-# KEYS: seq, stream, applied, live, freeze, excluded. ARGV: token, n, then n triples (id or
-# "", label, payload). A record from an excluded source is appended but never applied, so its
-# id stays open, as in the file log; only then are payloads decoded here.
+# KEYS: seq, stream, applied, live, freeze, excluded. ARGV: token, n, then n quadruples (id or
+# "", label, source, payload). A record from an excluded source is appended but never applied,
+# so its id stays open, as in the file log. The payloads are never decoded here: the script's
+# msgpack reader cannot read the bins of a record (`records`).
 APPEND = """
 if redis.call('GET', KEYS[4]) ~= ARGV[1] then return {2} end
 if redis.call('EXISTS', KEYS[5]) == 1 then return {3} end
@@ -30,33 +31,29 @@ local n = tonumber(ARGV[2])
 local dup, open = {}, {}
 if redis.call('SCARD', KEYS[6]) > 0 then
   for i = 0, n - 1 do
-    local ok, record = pcall(cmsgpack.unpack, ARGV[5 + 3 * i])
-    if ok and type(record) == 'table' and type(record['source']) == 'string'
-        and redis.call('SISMEMBER', KEYS[6], record['source']) == 1 then
-      open[i] = true
-    end
+    if redis.call('SISMEMBER', KEYS[6], ARGV[5 + 4 * i]) == 1 then open[i] = true end
   end
 end
 for i = 0, n - 1 do
-  local id = ARGV[3 + 3 * i]
+  local id = ARGV[3 + 4 * i]
   if id ~= '' then
     local have = redis.call('HGET', KEYS[3], id)
     if have then
-      if have ~= ARGV[4 + 3 * i] then return {1, i, have} end
+      if have ~= ARGV[4 + 4 * i] then return {1, i, have} end
       dup[i] = true
     end
   end
 end
 local first, count = -1, 0
 for i = 0, n - 1 do
-  local id = ARGV[3 + 3 * i]
+  local id = ARGV[3 + 4 * i]
   if not dup[i] and id ~= '' and not open[i]
-      and redis.call('HSETNX', KEYS[3], id, ARGV[4 + 3 * i]) == 0 then
+      and redis.call('HSETNX', KEYS[3], id, ARGV[4 + 4 * i]) == 0 then
     dup[i] = true
   end
   if not dup[i] then
     local seq = redis.call('INCR', KEYS[1])
-    redis.call('XADD', KEYS[2], '0-' .. seq, 'd', ARGV[5 + 3 * i])
+    redis.call('XADD', KEYS[2], '0-' .. seq, 'd', ARGV[6 + 4 * i])
     if first < 0 then first = seq - 1 end
     count = count + 1
   end
@@ -68,12 +65,15 @@ return out
 
 
 async def admit(
-    log: RedisLog, payloads: list[bytes], keys: list[tuple[str | None, str]]
+    log: RedisLog, payloads: list[bytes], keys: list[tuple[str | None, str, str]]
 ) -> tuple[int, list[int], tuple[int, str] | None]:
-    """Append what is new, atomically: (first offset, duplicate positions, conflict)."""
+    """Append what is new, atomically: (first offset, duplicate positions, conflict).
+
+    ``keys`` holds each record's (id, label, source), which the script checks.
+    """
     args: list[Any] = [log.token, len(payloads)]
-    for (event_id, label), payload in zip(keys, payloads, strict=True):
-        args += [event_id or "", label, payload]
+    for (event_id, label, source), payload in zip(keys, payloads, strict=True):
+        args += [event_id or "", label, source, payload]
     ks = [log.keys.seq, log.keys.stream, log.keys.applied, log.keys.live,
           log.keys.freeze, log.keys.excluded]  # fmt: skip
     want, confirmed = log.state.wait_replicas, None

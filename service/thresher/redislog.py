@@ -136,7 +136,7 @@ class RedisLog(LabelLog):
 
     async def append(self, payloads: list[bytes]) -> int:
         """Append records that need no exactly-once check; returns the first offset."""
-        first, _, _ = await self.admit(payloads, [(None, "")] * len(payloads))
+        first, _, _ = await self.admit(payloads, [(None, "", "")] * len(payloads))
         return first
 
     async def read(self, start: int) -> AsyncIterator[tuple[int, bytes]]:
@@ -199,9 +199,10 @@ class RedisLog(LabelLog):
     # -- shared by every replica ------------------------------------------------------------
 
     async def admit(
-        self, payloads: list[bytes], keys: list[tuple[str | None, str]]
+        self, payloads: list[bytes], keys: list[tuple[str | None, str, str]]
     ) -> tuple[int, list[int], tuple[int, str] | None]:
-        """Append what is new, atomically: (first offset, duplicate positions, conflict)."""
+        """Append what is new, atomically: (first offset, duplicate positions, conflict);
+        ``keys`` holds each record's (id, label, source)."""
         # The script's module imports this one, as redisswitch does.
         from .redisadmit import admit
 
