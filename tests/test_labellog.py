@@ -204,6 +204,31 @@ async def test_append_read_head_first_and_reopen(tmp_path: Path) -> None:
     await again.close()
 
 
+@pytest.mark.parametrize("start", [0, 150, 299, 300, 420, 600])
+async def test_first_read_after_open_takes_what_recovery_checked(
+    tmp_path: Path, start: int
+) -> None:
+    # Recovery reads and checks the whole last segment; the first read after opening takes
+    # those payloads. It must give exactly what reading the files gives, from any offset.
+    log = await FileLog.open(tmp_path / "log", segment_bytes=300 * 1040)
+    for lo in range(0, 600, 50):
+        await log.append([payload(i) for i in range(lo, lo + 50)])
+    assert log.segments == 2
+    await log.close()
+    want = on_disk(tmp_path / "log")
+    again = await FileLog.open(tmp_path / "log", segment_bytes=300 * 1040)
+    assert again._recovered is not None and again._recovered[0] == 300
+    assert [p for _, p in await read_all(again, start)] == want[start:]
+    assert again._recovered is None  # read once only: a later read checks the file again
+    assert [p for _, p in await read_all(again, start)] == want[start:]
+    await again.close()
+    # An append first: the read covers it, from the files.
+    again = await FileLog.open(tmp_path / "log", segment_bytes=300 * 1040)
+    await again.append([b"late"])
+    assert [p for _, p in await read_all(again, start)] == [*want[start:], b"late"]
+    await again.close()
+
+
 async def test_one_writer_per_directory(tmp_path: Path) -> None:
     log = await FileLog.open(tmp_path / "log")
     with pytest.raises(LogUnavailable, match="open elsewhere"):
