@@ -151,9 +151,10 @@ def replay_rows(mode: Mode) -> list[dict[str, Any]]:
             median(rates),
             "labels/s",
             target=("value>=", 100_000),
-            note=f"{n:,} demo labels in the log; replay reads them a segment chunk at a time "
-            f"and applies runs of {REPLAY_CHUNK:,}: decoded as one msgpack stream, featurized "
-            "as one batch, learned in one kernel call, quality counted in one loop",
+            note=f"{n:,} demo labels in the log, written by label requests; replay takes the "
+            f"last segment recovery checked and applies runs of {REPLAY_CHUNK:,}: decoded as "
+            "one msgpack stream, fields left packed, the rows stored at label time learned in "
+            "one kernel call, quality counted in one loop",
             samples=rates,
         )
     ]

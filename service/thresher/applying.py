@@ -18,6 +18,7 @@ import gc
 import json
 import logging
 from collections.abc import Iterator, Sequence
+from operator import itemgetter
 from typing import TYPE_CHECKING, Any, NamedTuple
 
 import numpy as np
@@ -99,8 +100,9 @@ class Applying(Mistakes):
             return
         if first != self.offset:
             raise RuntimeError(f"{self.name}: applying offset {first}, expected {self.offset}")
-        given = list(rows) if rows is not None else [None] * len(recs)
+        given = list(rows) if rows is not None else None
         if self._rows:
+            given = given or [None] * len(recs)
             for k in range(len(recs)):
                 kept = self._rows.pop(first + k, None)
                 if given[k] is None:
@@ -148,17 +150,24 @@ class Applying(Mistakes):
             raise error
 
     def _featurize_run(
-        self, recs: Sequence[dict[str, Any]], given: list[Any], learned: list[int], ys: list[int]
+        self,
+        recs: Sequence[dict[str, Any]],
+        given: list[Any] | None,
+        learned: list[int],
+        ys: list[int],
     ) -> tuple[list[int], list[int], tuple[np.ndarray, np.ndarray, np.ndarray]]:
         """The learned records' rows as one CSR batch; records whose fields fail are dropped.
 
         A row comes from the request that featurized it, else from the record (made under this
         model's featurizer, see `records`), else the record's fields are featurized now.
         """
+        if given is None:
+            kept = [recs[k].get("row") for k in learned]
+            if None not in kept:  # replay and the follower: every row was stored
+                return learned, ys, records.stack_rows(kept)
+            given = [None] * len(recs)
         rows = dict(zip(learned, (given[k] for k in learned), strict=True))
         stored = [k for k in learned if rows[k] is None and recs[k].get("row") is not None]
-        if len(stored) == len(learned):  # replay and the follower: every row was stored
-            return learned, ys, records.stack_rows([recs[k] for k in learned])
         for k in stored:
             rows[k] = SparseRow(*records.row(recs[k]))
         missing = [k for k in learned if rows[k] is None]
@@ -197,8 +206,8 @@ class Applying(Mistakes):
     ) -> None:
         """`_count`'s counters, applied ids and drift alarms for a learned run of records."""
         guesses = predicted.tolist()
-        sources = [record["source"] for record in run]
-        times = [record.get("time") for record in run]
+        sources = list(map(itemgetter("source"), run))
+        times = list(map(itemgetter("time"), run))
         label_index = self.class_index.get
         served = [None if (c := r.get("served")) is None else label_index(c) for r in run]
         start = 0
@@ -215,12 +224,11 @@ class Applying(Mistakes):
             start += fired + 1
             self.offset = first + learned[start - 1] + 1  # the offset the alarm fired at
             self._log_drift()
-        ids = [record.get("id") for record in run]
-        if None in ids:
-            self.applied.update((i, y) for i, y in zip(ids, ys, strict=True) if i is not None)
-        else:
-            self.applied.update(zip(ids, ys, strict=True))
-        self.last_update = float(run[-1].get("time") or 0.0)
+        applied = self.applied  # its interface is get, in, item assignment and len
+        for event_id, y in zip(map(itemgetter("id"), run), ys, strict=True):
+            if event_id is not None:
+                applied[event_id] = y
+        self.last_update = float(times[-1] or 0.0)
 
     def _applied_through(self, first: int, recs: Sequence[dict[str, Any]]) -> None:
         """After records from ``first`` are applied: keep their outcomes, wake their waiters."""

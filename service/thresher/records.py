@@ -152,9 +152,8 @@ def row(record: dict[str, Any]) -> tuple[np.ndarray, np.ndarray]:
     )
 
 
-def stack_rows(recs: Sequence[dict[str, Any]]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The checked stored rows of records as one CSR batch (indptr, indices, values)."""
-    rows = [record["row"] for record in recs]
+def stack_rows(rows: Sequence[tuple[bytes, bytes]]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Checked stored rows (records' ``row``) as one CSR batch (indptr, indices, values)."""
     indptr = np.zeros(len(rows) + 1, dtype=np.int64)
     indptr[1:] = list(accumulate(len(r[0]) >> 2 for r in rows))
     indices = np.frombuffer(b"".join(r[0] for r in rows), dtype=INDEX).astype(np.int64)
@@ -245,6 +244,8 @@ def _rows_checked(
             f"label record row is not one the featurizer makes (indices below 2**{bits}, "
             "strictly increasing; values finite and nonzero)"
         )
+    if len(mine) == len(recs):
+        return recs, error
     kept = set(mine)
     for k, record in enumerate(recs):
         if k in kept or "row" not in record:
