@@ -61,7 +61,6 @@ class Applying(Mistakes):
     exclude_sources: frozenset[str]
     apply_on_append: bool
     _outcomes: dict[int, bool]
-    _rows: dict[int, Any]
     _waiters: dict[int, asyncio.Future[None]]
 
     @functools.cached_property
@@ -77,8 +76,6 @@ class Applying(Mistakes):
         if offset != self.offset:
             raise RuntimeError(f"{self.name}: applying offset {offset}, expected {self.offset}")
         self.offset = offset + 1
-        if row is None and self._rows:
-            row = self._rows.pop(offset, None)
         if isinstance(row, BatchRow):
             row = row.batch.row(row.i)
         elif row is None and record.get("row") is not None:
@@ -101,12 +98,6 @@ class Applying(Mistakes):
         if first != self.offset:
             raise RuntimeError(f"{self.name}: applying offset {first}, expected {self.offset}")
         given = list(rows) if rows is not None else None
-        if self._rows:
-            given = given or [None] * len(recs)
-            for k in range(len(recs)):
-                kept = self._rows.pop(first + k, None)
-                if given[k] is None:
-                    given[k] = kept
         # A class list never changes, so only a foreign record has a label it lacks.
         label_index = self.class_index.get
         found = [label_index(record["label"]) for record in recs]

@@ -159,9 +159,13 @@ class Labelling(Applying):
             return ack
         last = first + len(payloads) - 1
         if self.apply_on_append:
-            for k, (record, row) in enumerate(rows):
-                self._ready[first + k] = (record, row)
-            self._drain()
+            if first == self.offset and not self._ready and not self.holds:
+                # The usual case: the next records in the log, nothing else waiting to apply.
+                self.apply_batch(first, [record for record, _ in rows], [r for _, r in rows])
+            else:
+                for k, (record, row) in enumerate(rows):
+                    self._ready[first + k] = (record, row)
+                self._drain()
         if wait or self.apply_on_append:
             await self.wait_applied(last)
         for event_id in fresh:
@@ -224,12 +228,7 @@ class Labelling(Applying):
         count = len(payloads) - len(repeated)
         if count == 0:
             return LabelAck(0, duplicates, 0, self.log.head())
-        last = first + count - 1
-        skip = set(repeated)
-        kept = [row for k, (_, row) in enumerate(rows) if k not in skip]
-        for offset, row in enumerate(kept, start=first):
-            if offset >= self.offset:  # saves the follower featurizing them again
-                self._rows[offset] = row
+        last = first + count - 1  # the follower learns the rows the records carry
         mistakes: int | None = None
         if wait:
             await self.wait_applied(last, timeout=WAIT_APPLIED_SECONDS)
