@@ -22,6 +22,7 @@ from collections.abc import AsyncIterator, Iterator
 from pathlib import Path
 
 import msgpack
+import numpy as np
 import pytest
 
 from conftest import IN_CI, _run, _unmount, mounted_tmpfs, require_binary
@@ -120,6 +121,38 @@ def test_record_rejects_non_records() -> None:
         records.decode(b"\xc1")  # 0xc1 is the one byte the msgpack spec never uses
     with pytest.raises(records.CorruptRecord, match="not valid msgpack"):
         records.decode(records.encode(RECORD)[:-3])
+
+
+def test_fingerprint_names_everything_a_row_depends_on() -> None:
+    spec = {"fields": {"title": {"kind": "text"}}}
+    key = records.fingerprint(spec, bits=20, seed=0, signed=True)
+    assert len(key) == 8 and key == records.fingerprint(dict(spec), bits=20, seed=0, signed=True)
+    others = [
+        records.fingerprint(spec, bits=21, seed=0, signed=True),
+        records.fingerprint(spec, bits=20, seed=1, signed=True),
+        records.fingerprint(spec, bits=20, seed=0, signed=False),
+        records.fingerprint({"fields": {"title": {"kind": "categorical"}}}, bits=20, seed=0,
+                            signed=True),
+    ]  # fmt: skip
+    assert len({key, *others}) == 5
+
+
+def test_packed_fields_are_checked_when_first_unpacked() -> None:
+    key = b"12345678"
+    row = (struct.pack("<2I", 3, 9), struct.pack("<2f", 1.0, -2.0))
+    good = records.encode(RECORD, (np.array([3, 9]), np.array([1.0, -2.0], np.float32)), key)
+    array = msgpack.unpackb(good)
+    assert (array[7], array[8], array[9]) == (key, *row)  # little-endian uint32 and float32
+    array[6] = msgpack.packb(["not", "a", "map"])
+    bad = msgpack.packb(array, use_bin_type=True)
+    # Under another key the fields are featurized, so they are checked at once ...
+    with pytest.raises(records.CorruptRecord, match="fields must be a map"):
+        records.decode(bad)
+    # ... under the model's own key the row is learned and the fields wait until read.
+    record = records.decode(bad, key, 10)
+    assert record["row"] == row
+    with pytest.raises(records.CorruptRecord, match="fields must be a map"):
+        records.fields(record)
 
 
 def _decoded_one_by_one(payloads: list[bytes]) -> tuple[list[object], str | None]:

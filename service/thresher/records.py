@@ -23,7 +23,8 @@ bin), ``key`` and ``row``. :func:`decode_many` given a model's key and bits chec
 each record made under that key (one the featurizer cannot have made is a corrupt record),
 keeps it as ``row`` (index bytes, value bytes) and leaves the fields packed; :func:`fields`
 unpacks them on first use. Every other record gets ``row`` None and its fields decoded, to be
-featurized again.
+featurized again. A label request's records hold their fields as ``packed`` too, from the moment
+they are packed for the log.
 """
 
 from __future__ import annotations
