@@ -200,12 +200,7 @@ def decode_many(
                     break
                 (_, event_id, label, source, served, stamp, packed, made_by, ib, vb, *_) = obj
                 if not (
-                    (event_id is None or type(event_id) is str)
-                    and type(label) is str
-                    and type(source) is str
-                    and (served is None or type(served) is str)
-                    and type(stamp) is float
-                    and math.isfinite(stamp)
+                    _plain(event_id, label, source, served, stamp)
                     and type(packed) is bytes
                     and type(made_by) is bytes
                     and type(ib) is bytes
@@ -353,6 +348,13 @@ def _well_formed(record: dict[str, Any], *, fields: bool = True) -> bool:
         found = record["fields"] if fields else None
     except KeyError:
         return False
+    return _plain(event_id, label, source, served, stamp) and (
+        not fields or (type(found) is dict and all(map(str.__instancecheck__, found)))
+    )
+
+
+def _plain(event_id: Any, label: Any, source: Any, served: Any, stamp: Any) -> bool:
+    """Whether a record's scalars have the exact types this service writes."""
     return (
         (event_id is None or type(event_id) is str)
         and type(label) is str
@@ -360,5 +362,4 @@ def _well_formed(record: dict[str, Any], *, fields: bool = True) -> bool:
         and (served is None or type(served) is str)
         and type(stamp) is float
         and math.isfinite(stamp)
-        and (not fields or (type(found) is dict and all(map(str.__instancecheck__, found))))
     )
