@@ -7,8 +7,9 @@ demo's invented listings and model definition, and measures:
 - admission: labels/s the append script takes into one stream (batches of 100, 4 writers),
   beside the file log's group-committed appends (flush ``always``) on the same disk;
 - the stream alone: labels/s one reader gets through XREAD (batches of 1,000) and decoding
-  (``records.decode_many``, as the follower decodes); redis-py parses replies with hiredis
-  when it is installed (the ``redis``, ``test`` and ``bench`` extras install it);
+  (``records.decode_many`` with the model's row key, as the follower decodes: the records
+  carry the rows their label request made, so fields stay packed); redis-py parses replies
+  with hiredis when it is installed (the ``redis``, ``test`` and ``bench`` extras install it);
 - catch-up: labels/s one replica applies from the stream (its follower: XREAD, then
   ``Model.apply_payloads`` on runs of entries), beside replaying the same records from the file
   log; target 50,000/s;
@@ -146,7 +147,13 @@ def _labels(n: int, seed: int, prefix: str) -> list[dict[str, Any]]:
 
 
 def _payloads(items: list[dict[str, Any]]) -> list[bytes]:
-    return [records.encode({**x, "source": "bench", "served": None, "time": 1.0}) for x in items]
+    """The records as a label request writes them: fields packed, with the rows it made."""
+    model = _model(None)
+    batch = model.featurizer.transform_batch([x["fields"] for x in items])
+    pack = records.fields_packer()
+    recs = [{"id": x["id"], "label": x["label"], "source": "bench", "served": None,
+             "time": 1.0, "packed": pack(x["fields"])} for x in items]  # fmt: skip
+    return records.encode_many(recs, model.row_key, batch, range(len(items)))
 
 
 async def _workers(batches: list[Any], work: Callable[[Any], Awaitable[None]], n: int) -> float:
@@ -171,7 +178,7 @@ async def _storage_rows(state: RedisState, tmp: Path, n: int) -> list[Row]:
     """Admission, stream read and catch-up figures, in this process."""
     items = _labels(n, seed=3, prefix="a")
     payloads = _payloads(items)
-    keys = [(x["id"], x["label"]) for x in items]
+    keys = [(x["id"], x["label"], "bench") for x in items]
     spans = [(i, i + 100) for i in range(0, n, 100)]
     token = await state.define("bench", {})
     log = await state.open_log("bench", token)
@@ -187,11 +194,14 @@ async def _storage_rows(state: RedisState, tmp: Path, n: int) -> list[Row]:
 
     append_s = await _workers(spans, append, 4)
 
+    reader = _model(None)  # the follower's decoding: its row key and bits
     start, cursor, got = time.perf_counter(), "0-0", 0
     while got < n:
         reply = await state.reader.xread({log.keys.stream: cursor}, count=1000)
         for _, entries in reply:
-            decoded, error = records.decode_many([data[b"d"] for _, data in entries])
+            decoded, error = records.decode_many(
+                [data[b"d"] for _, data in entries], reader.row_key, reader.config.bits
+            )
             if error is not None:
                 raise error
             cursor, got = entries[-1][0], got + len(decoded)

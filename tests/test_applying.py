@@ -10,14 +10,18 @@ from __future__ import annotations
 import copy
 import itertools
 import logging
+import struct
 from pathlib import Path
 from typing import Any
 
+import msgpack
 import pytest
 
 from thresher import records
 from thresher.demo_traffic import DEMO_MODEL, ListingTraffic
+from thresher.errors import InvalidEvent
 from thresher.eventcache import EventCache
+from thresher.features import Featurizer
 from thresher.labellog import FileLog
 from thresher.lifecycle import replay
 from thresher.models import Model, ModelConfig
@@ -209,3 +213,97 @@ async def test_replay_reads_segments_in_lists_and_applies_chunks_as_one_at_a_tim
     assert replayed._outcomes == one._outcomes
     assert list(replayed.recent_mistakes) == list(one.recent_mistakes)
     await log.close()
+
+
+def _encoded(model: Model, recs: list[dict[str, Any]], how: str) -> list[bytes]:
+    """The records as a log would hold them: the old map (version 1), version 2 without a row,
+    with this model's rows, with rows another featurizer made, or each in turn."""
+    other = Featurizer(model.featurizer.spec, model.config.bits, seed=11, signed=True)
+    other_key = records.fingerprint(
+        other.spec.to_json(), bits=model.config.bits, seed=11, signed=True
+    )
+    out = []
+    for k, record in enumerate(recs):
+        way = ("v1", "v2", "rows", "foreign")[k % 4] if how == "mixed" else how
+        featurizer, key = (
+            (other, other_key) if way == "foreign" else (model.featurizer, model.row_key)
+        )
+        if way == "v1":  # the version 1 encoding, written with msgpack directly
+            out.append(msgpack.packb(record, use_bin_type=True, strict_types=True))
+            continue
+        try:
+            made = featurizer.transform(record["fields"])
+        except InvalidEvent:  # a foreign log's fields: stored without a row
+            way = "v2"
+        if way == "v2":
+            out.append(records.encode(record))
+        else:
+            out.append(records.encode(record, (made.indices, made.values), key))
+    return out
+
+
+@pytest.mark.parametrize("how", ["v1", "v2", "rows", "foreign", "mixed"])
+async def test_replay_of_every_record_encoding_matches_one_at_a_time(
+    tmp_path: Path, how: str
+) -> None:
+    recs = _records(3000, multi=False)
+    one = _model("averaged", ["fine", "fraud"])
+    for offset, record in enumerate(copy.deepcopy(recs)):
+        one.apply(offset, record)
+    log = await FileLog.open(tmp_path / "log")
+    replayed = _model("averaged", ["fine", "fraud"], log)
+    payloads = _encoded(replayed, recs, how)
+    for lo in range(0, len(payloads), 250):
+        await log.append(payloads[lo : lo + 250])
+    assert await replay(replayed, chunk=700) == len(recs)
+    assert replayed.digest() == one.digest() and replayed.applied == one.applied
+    assert replayed._outcomes == one._outcomes
+    assert list(replayed.recent_mistakes) == list(one.recent_mistakes)
+    await log.close()
+
+
+def test_stored_rows_are_used_and_a_foreign_key_is_featurized_again() -> None:
+    recs = _records(400, multi=False)
+    model = _model("classic", ["fine", "fraud"])
+    decoded, error = records.decode_many(
+        _encoded(model, recs, "mixed"), model.row_key, model.config.bits
+    )
+    assert error is None and len(decoded) == len(recs)
+    for k, record in enumerate(decoded):
+        if k % 4 == 2 and k not in (10, len(recs) - 20):  # this model's rows, kept as stored
+            assert "fields" not in record and record["row"] is not None
+            indices, values = records.row(record)
+            want = model.featurizer.transform(recs[k]["fields"])
+            assert indices.tolist() == want.indices.tolist()
+            assert values.tolist() == want.values.tolist()
+        else:  # every other record is featurized again from its fields
+            assert record.get("row") is None and record["fields"] == recs[k]["fields"]
+
+
+@pytest.mark.parametrize(
+    "forge",
+    [
+        lambda ib, vb: (ib[:-4] + struct.pack("<I", 1 << 20), vb),  # index >= 2**bits
+        lambda ib, vb: (ib[4:8] + ib[:4] + ib[8:], vb),  # not increasing
+        lambda ib, vb: (ib[:4] + ib[:4] + ib[8:], vb),  # a repeated index
+        lambda ib, vb: (ib, struct.pack("<f", float("nan")) + vb[4:]),
+        lambda ib, vb: (ib, struct.pack("<f", float("inf")) + vb[4:]),
+        lambda ib, vb: (ib, struct.pack("<f", 0.0) + vb[4:]),
+        lambda ib, vb: (ib[:-4], vb),  # fewer indices than values
+        lambda ib, vb: (ib + b"\x00", vb + b"\x00"),  # not whole elements
+    ],
+)
+def test_a_forged_row_is_a_corrupt_record(forge: Any) -> None:
+    recs = _records(1200, multi=False)
+    one, batched = _model("classic", ["fine", "fraud"]), _model("classic", ["fine", "fraud"])
+    payloads = _encoded(batched, recs, "rows")
+    array = msgpack.unpackb(payloads[1000])
+    array[8], array[9] = forge(array[8], array[9])
+    payloads[1000] = msgpack.packb(array, use_bin_type=True)
+    for offset, record in enumerate(copy.deepcopy(recs[:1000])):
+        one.apply(offset, record)
+    with pytest.raises(records.CorruptRecord):
+        batched.apply_payloads(0, payloads)
+    assert batched.offset == 1000
+    assert batched.digest() == one.digest()
+    assert list(batched.recent_mistakes) == list(one.recent_mistakes)

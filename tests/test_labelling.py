@@ -7,10 +7,12 @@ from typing import Any
 
 import pytest
 
+from thresher import records
 from thresher.demo_traffic import DEMO_MODEL, ListingTraffic
 from thresher.errors import Conflict, InvalidEvent
 from thresher.eventcache import EventCache
 from thresher.labellog import FileLog
+from thresher.lifecycle import replay
 from thresher.models import Model, ModelConfig
 
 
@@ -94,4 +96,28 @@ async def test_label_requests_learn_as_records_applied_one_by_one(
     # A retry of the whole request counts every label as a duplicate and learns nothing.
     again = await model.label(labels[200:300], source="queue", now=9.0)
     assert (again.applied, again.duplicates) == (0, 100) and model.digest() == reference.digest()
+    await model.log.close()
+
+
+async def test_label_requests_store_the_rows_they_made_and_replay_to_the_same_digest(
+    tmp_path: Path,
+) -> None:
+    model = await _model(tmp_path)
+    labels = _labels(1500, seed=8)
+    for lo in range(0, len(labels), 300):
+        await model.label(labels[lo : lo + 300], source="queue", now=3.0 + lo)
+    payloads = [payload async for _, payload in model.log.read(0)]
+    decoded, error = records.decode_many(payloads, model.row_key, model.config.bits)
+    assert error is None and len(decoded) == len(labels)
+    for record, label in zip(decoded, labels, strict=True):
+        assert "fields" not in record  # left packed: the stored row is learned as it is
+        indices, values = records.row(record)
+        want = model.featurizer.transform(label["fields"])
+        assert indices.tolist() == want.indices.tolist()
+        assert values.tolist() == want.values.tolist()
+        assert records.fields(record) == label["fields"]
+    replayed = model.fresh()
+    assert await replay(replayed) == len(labels)
+    assert replayed.digest() == model.digest() and replayed.applied == model.applied
+    assert list(replayed.recent_mistakes) == list(model.recent_mistakes)
     await model.log.close()

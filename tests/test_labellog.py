@@ -22,6 +22,7 @@ from collections.abc import AsyncIterator, Iterator
 from pathlib import Path
 
 import msgpack
+import numpy as np
 import pytest
 
 from conftest import IN_CI, _run, _unmount, mounted_tmpfs, require_binary
@@ -65,9 +66,20 @@ async def read_all(log: LabelLog, start: int = 0) -> list[tuple[int, bytes]]:
 # -- records ------------------------------------------------------------------------------
 
 
+def _six(record: dict[str, object]) -> dict[str, object]:
+    """A decoded record's six keys, with its fields unpacked."""
+    return {**{k: record[k] for k in RECORD if k != "fields"}, "fields": records.fields(record)}
+
+
 def test_record_round_trip_and_wire_form() -> None:
     data = records.encode(RECORD)
-    assert records.decode(data) == RECORD
+    assert _six(records.decode(data)) == RECORD
+    # Version 2 is a 10-element array (fixarray 0x9a) led by its version, with the fields as a
+    # bin holding their own msgpack map.
+    assert data[:2] == b"\x9a\x02"
+    array = msgpack.unpackb(data)
+    assert msgpack.unpackb(array[6]) == RECORD["fields"]
+    assert array[7:] == [b"", b"", b""]  # no row: the reader featurizes the fields
     # The msgpack spec's own example (msgpack.org front page, from memory):
     # {"compact": true, "schema": 0} packs to 82 a7 "compact" c3 a6 "schema" 00.
     assert msgpack.unpackb(bytes.fromhex("82a7636f6d70616374c3a6736368656d6100")) == {
@@ -78,6 +90,8 @@ def test_record_round_trip_and_wire_form() -> None:
     assert b"\xa5fraud" in data
     whole = records.decode(records.encode({**RECORD, "time": 12}))
     assert isinstance(whole["time"], float) and whole["time"] == 12.0
+    # Version 1, the map of the six keys, is still read as it always was.
+    assert records.decode(msgpack.packb(RECORD, use_bin_type=True)) == RECORD
 
 
 @pytest.mark.parametrize(
@@ -107,6 +121,38 @@ def test_record_rejects_non_records() -> None:
         records.decode(b"\xc1")  # 0xc1 is the one byte the msgpack spec never uses
     with pytest.raises(records.CorruptRecord, match="not valid msgpack"):
         records.decode(records.encode(RECORD)[:-3])
+
+
+def test_fingerprint_names_everything_a_row_depends_on() -> None:
+    spec = {"fields": {"title": {"kind": "text"}}}
+    key = records.fingerprint(spec, bits=20, seed=0, signed=True)
+    assert len(key) == 8 and key == records.fingerprint(dict(spec), bits=20, seed=0, signed=True)
+    others = [
+        records.fingerprint(spec, bits=21, seed=0, signed=True),
+        records.fingerprint(spec, bits=20, seed=1, signed=True),
+        records.fingerprint(spec, bits=20, seed=0, signed=False),
+        records.fingerprint({"fields": {"title": {"kind": "categorical"}}}, bits=20, seed=0,
+                            signed=True),
+    ]  # fmt: skip
+    assert len({key, *others}) == 5
+
+
+def test_packed_fields_are_checked_when_first_unpacked() -> None:
+    key = b"12345678"
+    row = (struct.pack("<2I", 3, 9), struct.pack("<2f", 1.0, -2.0))
+    good = records.encode(RECORD, (np.array([3, 9]), np.array([1.0, -2.0], np.float32)), key)
+    array = msgpack.unpackb(good)
+    assert (array[7], array[8], array[9]) == (key, *row)  # little-endian uint32 and float32
+    array[6] = msgpack.packb(["not", "a", "map"])
+    bad = msgpack.packb(array, use_bin_type=True)
+    # Under another key the fields are featurized, so they are checked at once ...
+    with pytest.raises(records.CorruptRecord, match="fields must be a map"):
+        records.decode(bad)
+    # ... under the model's own key the row is learned and the fields wait until read.
+    record = records.decode(bad, key, 10)
+    assert record["row"] == row
+    with pytest.raises(records.CorruptRecord, match="fields must be a map"):
+        records.fields(record)
 
 
 def _decoded_one_by_one(payloads: list[bytes]) -> tuple[list[object], str | None]:
@@ -188,6 +234,31 @@ async def test_append_read_head_first_and_reopen(tmp_path: Path) -> None:
     assert (again.head(), again.recovered_bytes_dropped) == (3, 0)
     assert await again.append([b"dddd"]) == 3
     assert [p for _, p in await read_all(again)] == [b"a", b"bb", b"ccc", b"dddd"]
+    await again.close()
+
+
+@pytest.mark.parametrize("start", [0, 150, 299, 300, 420, 600])
+async def test_first_read_after_open_takes_what_recovery_checked(
+    tmp_path: Path, start: int
+) -> None:
+    # Recovery reads and checks the whole last segment; the first read after opening takes
+    # those payloads. It must give exactly what reading the files gives, from any offset.
+    log = await FileLog.open(tmp_path / "log", segment_bytes=300 * 1040)
+    for lo in range(0, 600, 50):
+        await log.append([payload(i) for i in range(lo, lo + 50)])
+    assert log.segments == 2
+    await log.close()
+    want = on_disk(tmp_path / "log")
+    again = await FileLog.open(tmp_path / "log", segment_bytes=300 * 1040)
+    assert again._recovered is not None and again._recovered[0] == 300
+    assert [p for _, p in await read_all(again, start)] == want[start:]
+    assert again._recovered is None  # read once only: a later read checks the file again
+    assert [p for _, p in await read_all(again, start)] == want[start:]
+    await again.close()
+    # An append first: the read covers it, from the files.
+    again = await FileLog.open(tmp_path / "log", segment_bytes=300 * 1040)
+    await again.append([b"late"])
+    assert [p for _, p in await read_all(again, start)] == [*want[start:], b"late"]
     await again.close()
 
 

@@ -19,14 +19,13 @@ from pathlib import Path
 from typing import Any
 
 import aiohttp
-import msgpack
 import pytest
 import redis
 from aiohttp import web
 from aiohttp.test_utils import TestServer
 
 from conftest import ServerProcess, free_port, require_binary
-from thresher import redisswitch
+from thresher import records, redisswitch
 from thresher.appliedids import AppliedIds, IdTable
 from thresher.errors import LogUnavailable, NotFound
 from thresher.http import create_app
@@ -164,7 +163,7 @@ def stream(server: RedisServer, model: str) -> list[tuple[int, dict[str, Any]]]:
     """The model's (offset, record) pairs in stream order, read straight from Redis."""
     with server.client() as client:
         entries = client.xrange(stream_key(server, model))
-    return [(int(i.split(b"-")[1]) - 1, msgpack.unpackb(d[b"d"])) for i, d in entries]
+    return [(int(i.split(b"-")[1]) - 1, records.decode(d[b"d"])) for i, d in entries]
 
 
 async def converged(
@@ -510,17 +509,17 @@ async def test_append_script_is_atomic_dense_and_exactly_once(
         token = await state.define("unit", {"name": "unit"})
         log = await state.open_log("unit", token)
         pay = [b"p%d" % i for i in range(4)]
-        first, dups, conflict = await log.admit(pay[:2], [("a", "x"), ("b", "y")])
+        first, dups, conflict = await log.admit(pay[:2], [("a", "x", "s"), ("b", "y", "s")])
         assert (first, dups, conflict, log.head()) == (0, [], None, 2)
         # A conflict anywhere refuses the whole batch: nothing of it is appended.
-        first, dups, conflict = await log.admit(pay[2:], [("c", "x"), ("a", "y")])
+        first, dups, conflict = await log.admit(pay[2:], [("c", "x", "s"), ("a", "y", "s")])
         assert (first, dups, conflict) == (-1, [], (1, "x"))
-        first, dups, conflict = await log.admit(pay[2:], [("a", "x"), (None, "")])
+        first, dups, conflict = await log.admit(pay[2:], [("a", "x", "s"), (None, "", "s")])
         assert (first, dups, conflict, log.head()) == (2, [0], None, 3)
         assert [o async for o, _ in log.read(0)] == [0, 1, 2]
         await state.undefine("unit", token)
         with pytest.raises(NotFound):  # a deleted model's appends are refused, not revived
-            await log.admit(pay[:1], [("z", "x")])
+            await log.admit(pay[:1], [("z", "x", "s")])
     finally:
         await state.close()
     with pytest.raises(LogUnavailable):  # nothing listens on a fresh free port
@@ -545,7 +544,7 @@ async def test_windowed_admission_rotates_as_the_replicas_index_and_a_switch_sta
         log = await state.open_log("windowed", token)
         mirror = AppliedIds(4)  # what every follower's model holds at the same offset
         for i in range(10):
-            first, dups, conflict = await log.admit([b"p"], [(f"a{i}", "x")])
+            first, dups, conflict = await log.admit([b"p"], [(f"a{i}", "x", "s")])
             assert (first, dups, conflict) == (i, [], None)
             mirror[f"a{i}"] = 0
             async with state.client.pipeline(transaction=False) as pipe:
@@ -554,11 +553,14 @@ async def test_windowed_admission_rotates_as_the_replicas_index_and_a_switch_sta
             assert set(current) == _generation(mirror.current)
             assert set(previous) == _generation(mirror.previous)
         # a9 is 1 id back, a0 10: past 2N = 8, so a0 is admitted (and trained) again.
-        assert (await log.admit([b"p", b"p"], [("a9", "x"), ("a0", "x")]))[:2] == (10, [0])
+        assert (await log.admit([b"p", b"p"], [("a9", "x", "s"), ("a0", "x", "s")]))[:2] == (
+            10,
+            [0],
+        )
         # Raw ids written before ids were hashed still count until the next switch.
         await state.client.hset(log.keys.legacy, "old", "y")
-        assert (await log.admit([b"p"], [("old", "x")]))[2] == (0, "y")
-        assert (await log.admit([b"p"], [("old", "y")]))[:2] == (-1, [0])
+        assert (await log.admit([b"p"], [("old", "x", "s")]))[2] == (0, "y")
+        assert (await log.admit([b"p"], [("old", "y", "s")]))[:2] == (-1, [0])
         # A restore sets both generations from the snapshot's arrays and drops the raw ids.
         snapshot = AppliedIds(4)
         snapshot.update((f"s{i}", i % 2) for i in range(6))
@@ -576,7 +578,7 @@ async def test_windowed_admission_rotates_as_the_replicas_index_and_a_switch_sta
         keys, ys = snapshot.current.keys()
         assert current == {k: [b"x", b"y"][y] for k, y in zip(keys, ys, strict=True)}
         assert set(previous) == _generation(snapshot.previous) and legacy == 0
-        assert (await log.admit([b"p", b"p"], [("s5", "y"), ("old", "x")]))[1] == [0]
+        assert (await log.admit([b"p", b"p"], [("s5", "y", "s"), ("old", "x", "s")]))[1] == [0]
         await state.undefine("windowed", token)
     finally:
         await state.close()

@@ -34,6 +34,7 @@ from test_redis import (
     stream_key,
     three_replicas,
 )
+from thresher import records
 from thresher.http import create_app
 from thresher.settings import Settings
 
@@ -48,7 +49,11 @@ def entries(server: RedisServer, model: str) -> list[tuple[int, dict[str, Any]]]
     """(offset, label record or control record) in stream order, read straight from Redis."""
     with server.client() as client:
         raw = client.xrange(stream_key(server, model))
-    return [(int(i.split(b"-")[1]) - 1, msgpack.unpackb(d.get(b"d") or d[b"c"])) for i, d in raw]
+    out = []
+    for entry_id, data in raw:
+        record = records.decode(data[b"d"]) if b"d" in data else msgpack.unpackb(data[b"c"])
+        out.append((int(entry_id.split(b"-")[1]) - 1, record))
+    return out
 
 
 def drop_snapshots_from(server: RedisServer, model: str, offset: int) -> int:

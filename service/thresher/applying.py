@@ -13,38 +13,31 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import functools
 import gc
 import json
 import logging
-from collections import deque
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Iterator, Sequence
+from operator import itemgetter
 from typing import TYPE_CHECKING, Any, NamedTuple
 
 import numpy as np
 
 from . import records
+from .appliedids import AppliedIds
 from .errors import InvalidEvent
 from .features import Batch, Featurizer, SparseRow
 from .learner import Learner
 from .learner_kernels import served_weights
+from .mistakes import RECENT_MISTAKES as RECENT_MISTAKES
+from .mistakes import Mistakes, Unexplained
 from .quality import Quality
 
 if TYPE_CHECKING:
     from .models import ModelConfig
 
 drift_logger = logging.getLogger("thresher.drift")
-RECENT_MISTAKES = 50
 OUTCOMES_KEPT = 1 << 17  # applied offsets whose mistake flag a waiting label request can read
-
-
-class _Unexplained(NamedTuple):
-    """A recent mistake whose top tokens are worked out when they are first read."""
-
-    entry: dict[str, Any]
-    fields: Mapping[str, Any]
-    row: SparseRow
-    before: np.ndarray  # (rows, nnz) served weights behind the prediction
-    predicted: int
 
 
 class BatchRow(NamedTuple):
@@ -54,7 +47,7 @@ class BatchRow(NamedTuple):
     i: int
 
 
-class Applying:
+class Applying(Mistakes):
     """Log-order learning of a model; its state is set up by ``Model.__init__``."""
 
     name: str
@@ -63,46 +56,31 @@ class Applying:
     class_index: dict[str, int]
     learner: Learner
     quality: Quality
-    applied: dict[str, int]
+    applied: AppliedIds
     offset: int
     last_update: float
     exclude_sources: frozenset[str]
     apply_on_append: bool
     _outcomes: dict[int, bool]
-    _rows: dict[int, Any]
     _waiters: dict[int, asyncio.Future[None]]
-    _recent: deque[dict[str, Any]]
-    _unexplained: deque[_Unexplained]
 
-    @property
-    def recent_mistakes(self) -> deque[dict[str, Any]]:
-        """The last RECENT_MISTAKES mistakes, newest first, each with its top tokens.
-
-        A batch leaves its mistakes' tokens to be worked out here, when they are first read:
-        most are pushed out by later mistakes before anyone looks (a replay makes thousands).
-        """
-        if self._unexplained:
-            shown = {id(entry) for entry in self._recent}
-            for entry, fields, row, before, predicted in self._unexplained:
-                if id(entry) in shown:
-                    entry["top"] = self._explain_before(fields, row, before, predicted)
-            self._unexplained.clear()
-        return self._recent
-
-    @recent_mistakes.setter
-    def recent_mistakes(self, entries: deque[dict[str, Any]]) -> None:
-        self._recent = entries
-        self._unexplained = deque(maxlen=entries.maxlen)
+    @functools.cached_property
+    def row_key(self) -> bytes:
+        """The fingerprint of this model's featurizer, under which its records store rows."""
+        config = self.config
+        return records.fingerprint(
+            self.featurizer.spec.to_json(), bits=config.bits, seed=config.seed, signed=config.signed
+        )
 
     def apply(self, offset: int, record: dict[str, Any], row: Any = None) -> None:
         """Apply the record at ``offset`` (must be the next one) to learner and counters."""
         if offset != self.offset:
             raise RuntimeError(f"{self.name}: applying offset {offset}, expected {self.offset}")
         self.offset = offset + 1
-        if row is None and self._rows:
-            row = self._rows.pop(offset, None)
         if isinstance(row, BatchRow):
             row = row.batch.row(row.i)
+        elif row is None and record.get("row") is not None:
+            row = SparseRow(*records.row(record))
         if record["source"] not in self.exclude_sources:
             self._learn(record, row)
         self._applied_through(offset, [record])
@@ -120,12 +98,7 @@ class Applying:
             return
         if first != self.offset:
             raise RuntimeError(f"{self.name}: applying offset {first}, expected {self.offset}")
-        given = list(rows) if rows is not None else [None] * len(recs)
-        if self._rows:
-            for k in range(len(recs)):
-                kept = self._rows.pop(first + k, None)
-                if given[k] is None:
-                    given[k] = kept
+        given = list(rows) if rows is not None else None
         # A class list never changes, so only a foreign record has a label it lacks.
         label_index = self.class_index.get
         found = [label_index(record["label"]) for record in recs]
@@ -151,9 +124,7 @@ class Applying:
                 predicted = int(steps.predicted[j])
                 entry = self._mistake_entry(run[j], predicted, steps.margins[j], [])
                 self._recent.appendleft(entry)
-                self._unexplained.append(
-                    _Unexplained(entry, run[j]["fields"], row, before, predicted)
-                )
+                self._unexplained.append(Unexplained(entry, run[j], row, before, predicted))
         self.offset = first + len(recs)
         self._applied_through(first, recs)
 
@@ -164,37 +135,53 @@ class Applying:
         before it are applied, as applying them one by one would.
         """
         with _collector_paused():
-            recs, error = records.decode_many(payloads)
+            recs, error = records.decode_many(payloads, self.row_key, self.config.bits)
             self.apply_batch(first, recs)
             del recs  # freed by reference counting while the collector is still paused
         if error is not None:
             raise error
 
     def _featurize_run(
-        self, recs: Sequence[dict[str, Any]], given: list[Any], learned: list[int], ys: list[int]
+        self,
+        recs: Sequence[dict[str, Any]],
+        given: list[Any] | None,
+        learned: list[int],
+        ys: list[int],
     ) -> tuple[list[int], list[int], tuple[np.ndarray, np.ndarray, np.ndarray]]:
-        """The learned records' rows as one CSR batch; records whose fields fail are dropped."""
-        missing = [k for k in learned if given[k] is None]
+        """The learned records' rows as one CSR batch; records whose fields fail are dropped.
+
+        A row comes from the request that featurized it, else from the record (made under this
+        model's featurizer, see `records`), else the record's fields are featurized now.
+        """
+        if given is None:
+            kept = [recs[k].get("row") for k in learned]
+            if None not in kept:  # replay and the follower: every row was stored
+                return learned, ys, records.stack_rows(kept)
+            given = [None] * len(recs)
+        rows = dict(zip(learned, (given[k] for k in learned), strict=True))
+        stored = [k for k in learned if rows[k] is None and recs[k].get("row") is not None]
+        for k in stored:
+            rows[k] = SparseRow(*records.row(recs[k]))
+        missing = [k for k in learned if rows[k] is None]
         if len(missing) == len(learned):
             try:
                 batch = self.featurizer.transform_batch(
-                    [recs[k]["fields"] for k in learned], path="fields"
+                    [records.fields(recs[k]) for k in learned], path="fields"
                 )
             except InvalidEvent:
                 pass  # accepted under the same spec, so only a foreign log gets here
             else:
                 return learned, ys, (batch.indptr, batch.indices, batch.values)
-        rows = dict(zip(learned, (given[k] for k in learned), strict=True))
         if missing:
             try:
                 batch = self.featurizer.transform_batch(
-                    [recs[k]["fields"] for k in missing], path="fields"
+                    [records.fields(recs[k]) for k in missing], path="fields"
                 )
                 rows.update((k, BatchRow(batch, i)) for i, k in enumerate(missing))
             except InvalidEvent:
                 for k in missing:
                     try:
-                        rows[k] = self.featurizer.transform(recs[k]["fields"], path="fields")
+                        rows[k] = self.featurizer.transform(records.fields(recs[k]), path="fields")
                     except InvalidEvent:
                         rows[k] = None  # skipped, as `apply` skips it
         kept = [(k, y) for k, y in zip(learned, ys, strict=True) if rows[k] is not None]
@@ -211,8 +198,8 @@ class Applying:
     ) -> None:
         """`_count`'s counters, applied ids and drift alarms for a learned run of records."""
         guesses = predicted.tolist()
-        sources = [record["source"] for record in run]
-        times = [record.get("time") for record in run]
+        sources = list(map(itemgetter("source"), run))
+        times = list(map(itemgetter("time"), run))
         label_index = self.class_index.get
         served = [None if (c := r.get("served")) is None else label_index(c) for r in run]
         start = 0
@@ -229,12 +216,11 @@ class Applying:
             start += fired + 1
             self.offset = first + learned[start - 1] + 1  # the offset the alarm fired at
             self._log_drift()
-        ids = [record.get("id") for record in run]
-        if None in ids:
-            self.applied.update((i, y) for i, y in zip(ids, ys, strict=True) if i is not None)
-        else:
-            self.applied.update(zip(ids, ys, strict=True))
-        self.last_update = float(run[-1].get("time") or 0.0)
+        applied = self.applied  # its interface is get, in, item assignment and len
+        for event_id, y in zip(map(itemgetter("id"), run), ys, strict=True):
+            if event_id is not None:
+                applied[event_id] = y
+        self.last_update = float(times[-1] or 0.0)
 
     def _applied_through(self, first: int, recs: Sequence[dict[str, Any]]) -> None:
         """After records from ``first`` are applied: keep their outcomes, wake their waiters."""
@@ -254,7 +240,7 @@ class Applying:
             return
         if row is None:
             try:
-                row = self.featurizer.transform(record["fields"], path="fields")
+                row = self.featurizer.transform(records.fields(record), path="fields")
             except InvalidEvent:
                 return  # accepted under the same spec, so unreachable unless the log is foreign
         # Explain a mistake with the weights that made it: gather them before the update
@@ -293,7 +279,7 @@ class Applying:
             record["_mistake"] = True
             # A batch keeps weights only for mistakes that stay among the recent ones.
             if before is not None:
-                top = self._explain_before(record["fields"], row, before, predicted)
+                top = self._explain_before(record, row, before, predicted)
                 self.recent_mistakes.appendleft(
                     self._mistake_entry(record, predicted, margins, top)
                 )
@@ -309,50 +295,6 @@ class Applying:
             "alarms": report["drift"]["alarms"],
         }
         drift_logger.warning("drift alarm %s", json.dumps(event, sort_keys=True))
-
-    def _explain_before(
-        self, fields: Mapping[str, Any], row: Any, before: np.ndarray, predicted: int
-    ) -> list[dict[str, Any]]:
-        """Top tokens of a mistaken prediction, by |weight x value| under the weights used."""
-        weights = before[predicted if before.shape[0] > 1 else 0]
-        values = np.asarray(row.values, dtype=np.float64)
-        contrib = weights * values
-        order = np.lexsort((row.indices, -np.abs(contrib)))
-        order = order[contrib[order] != 0][:5]
-        if order.size == 0:
-            return []
-        try:
-            _, tokens = self.featurizer.transform_with_tokens(fields, path="fields")
-        except InvalidEvent:
-            return []
-        names: dict[int, str] = {}
-        for token, index, _value in tokens:
-            names.setdefault(int(index), token)
-        return [
-            {
-                "token": names.get(int(row.indices[i]), f"#{int(row.indices[i])}"),
-                "weight": float(weights[i]),
-                "value": float(values[i]),
-                "contribution": float(contrib[i]),
-            }
-            for i in order
-        ]
-
-    def _mistake_entry(
-        self, record: dict[str, Any], predicted: int, margins: Any, top: list[dict[str, Any]]
-    ) -> dict[str, Any]:
-        predicted = int(predicted)
-        margins = np.asarray(margins, dtype=np.float64)
-        margin = float(margins[predicted] if margins.size > 1 else margins[0])
-        return {
-            "id": record.get("id"),
-            "label": record["label"],
-            "predicted": self.config.classes[predicted],
-            "margin": margin,
-            "source": record["source"],
-            "time": record.get("time"),
-            "top": top,
-        }
 
 
 @contextlib.contextmanager

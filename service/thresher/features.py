@@ -47,6 +47,7 @@ except ImportError:  # pragma: no cover - a source checkout that was never built
 __all__ = [
     "BIAS",
     "CROSS_CAP",
+    "TOKEN_RULES",
     "Batch",
     "FeatureSpec",
     "Featurizer",
@@ -57,6 +58,10 @@ __all__ = [
 
 BIAS = "^bias"
 CROSS_CAP = 64  # tokens one cross may add to one event; products of sets grow fast
+# The version of the token and hashing rules above. Label records store the rows they made
+# under a fingerprint that includes it (records.fingerprint): bump it with any change to how
+# fields become a row, so that stored rows are made again from their fields.
+TOKEN_RULES = 1
 
 
 def _number_text(value: int | float) -> str:

@@ -19,9 +19,11 @@ from . import records
 from .applying import Applying, BatchRow
 from .errors import Conflict, InvalidEvent, Unavailable
 from .eventcache import EventCache
+from .features import Batch
 from .labellog import LabelLog
 
 WAIT_APPLIED_SECONDS = 10.0
+LABEL_KEYS = frozenset({"id", "label", "fields"})
 
 
 @runtime_checkable
@@ -29,9 +31,10 @@ class SharedLog(Protocol):
     """A log several replicas append to: it admits labels exactly once and shares events."""
 
     async def admit(
-        self, payloads: list[bytes], keys: list[tuple[str | None, str]]
+        self, payloads: list[bytes], keys: list[tuple[str | None, str, str]]
     ) -> tuple[int, list[int], tuple[int, str] | None]:
-        """Append the new records: (first offset, duplicate positions, (position, label))."""
+        """Append the new records, keyed (id, label, source): (first offset, duplicate
+        positions, (position, label))."""
 
     async def share(self, scored: list[tuple[str, Any, str]], now: float) -> None:
         """Publish scored events (id, fields, served label) to the other replicas."""
@@ -90,39 +93,40 @@ class Labelling(Applying):
     ) -> LabelAck:
         if self.shared is not None:
             await self._recall(self.shared, labels)
-        payloads: list[bytes] = []
-        built: list[tuple[int, dict[str, Any]]] = []  # every label that gets featurized
+        # Every label that gets featurized: position, record, fields; a record holds its
+        # fields packed, as the log does, so that later changes to the caller's map show nowhere.
+        built: list[tuple[int, dict[str, Any], Mapping[str, Any]]] = []
         kept: list[int] = []  # positions in ``built`` of the records to append
         fresh: dict[str, int] = {}
         duplicates = 0
+        pack = records.fields_packer()
         try:
             for i, item in enumerate(labels):
-                where = f"labels[{i}]"
-                record = self._label_record(item, where, source, now)
-                if record is None:
+                made = self._label_record(item, i, source, now)
+                if made is None:
                     duplicates += 1
                     continue
-                built.append((i, record))
+                record, fields, y = made
+                built.append((i, record, fields))
                 event_id = record["id"]
                 if event_id is not None:
-                    y = self.class_index[record["label"]]
                     if event_id in fresh:
                         if fresh[event_id] != y:
                             raise Conflict(
                                 f"id {event_id!r} appears twice in this request with different "
                                 "labels",
-                                path=f"{where}.label",
+                                path=f"labels[{i}].label",
                             )
                         duplicates += 1
                         continue
                     fresh[event_id] = y
                 try:
-                    payloads.append(records.encode(record))
+                    record["packed"] = pack(fields)
                 except records.CorruptRecord:
                     raise InvalidEvent(
                         "the label's fields cannot be stored in the label log: integers must "
                         "fit in 64 bits; send larger numbers as strings or floats",
-                        path=f"{where}.fields",
+                        path=f"labels[{i}].fields",
                     ) from None
                 kept.append(len(built) - 1)
         except Exception:
@@ -130,9 +134,12 @@ class Labelling(Applying):
             # an earlier label is the error to report.
             self._featurize(built)
             raise
-        featurized = self._featurize(built)
-        rows = [(built[p][1], featurized[p]) for p in kept]
+        batch = self._featurize(built)
+        rows = [(built[p][1], BatchRow(batch, p)) for p in kept]
         spots = [built[p][0] for p in kept]
+        payloads = (
+            records.encode_many([r for r, _ in rows], self.row_key, batch, kept) if kept else []
+        )
         self.duplicates += duplicates
         if not payloads:
             return LabelAck(0, duplicates, 0, self.log.head())
@@ -152,9 +159,13 @@ class Labelling(Applying):
             return ack
         last = first + len(payloads) - 1
         if self.apply_on_append:
-            for k, (record, row) in enumerate(rows):
-                self._ready[first + k] = (record, row)
-            self._drain()
+            if first == self.offset and not self._ready and not self.holds:
+                # The usual case: the next records in the log, nothing else waiting to apply.
+                self.apply_batch(first, [record for record, _ in rows], [r for _, r in rows])
+            else:
+                for k, (record, row) in enumerate(rows):
+                    self._ready[first + k] = (record, row)
+                self._drain()
         if wait or self.apply_on_append:
             await self.wait_applied(last)
         for event_id in fresh:
@@ -164,19 +175,16 @@ class Labelling(Applying):
             mistakes = sum(1 for record, _ in rows if record.get("_mistake"))
         return LabelAck(len(payloads), duplicates, mistakes, last + 1)
 
-    def _featurize(self, built: list[tuple[int, dict[str, Any]]]) -> list[Any]:
+    def _featurize(self, built: list[tuple[int, dict[str, Any], Mapping[str, Any]]]) -> Batch:
         """The rows of the built records in one batch; errors name the label's own position."""
-        if not built:
-            return []
         try:
-            batch = self.featurizer.transform_batch([r["fields"] for _, r in built])
+            return self.featurizer.transform_batch([fields for _, _, fields in built])
         except InvalidEvent:
             # The batch numbers events by their place in it; find the first bad one again
             # under its place in the request.
-            for i, record in built:
-                self.featurizer.transform(record["fields"], path=f"labels[{i}].fields")
+            for i, _, fields in built:
+                self.featurizer.transform(fields, path=f"labels[{i}].fields")
             raise
-        return [BatchRow(batch, p) for p in range(len(built))]
 
     async def _recall(self, shared: SharedLog, labels: Sequence[Any]) -> None:
         """Fetch events scored on other replicas that these labels name by id alone."""
@@ -206,7 +214,7 @@ class Labelling(Applying):
         wait: bool,
     ) -> LabelAck:
         """Shared log: it decides duplicates and conflicts across replicas; a follower applies."""
-        keys = [(record["id"], record["label"]) for record, _ in rows]
+        keys = [(record["id"], record["label"], record["source"]) for record, _ in rows]
         first, repeated, conflict = await shared.admit(payloads, keys)
         if conflict is not None:
             k, existing = conflict
@@ -220,12 +228,7 @@ class Labelling(Applying):
         count = len(payloads) - len(repeated)
         if count == 0:
             return LabelAck(0, duplicates, 0, self.log.head())
-        last = first + count - 1
-        skip = set(repeated)
-        kept = [row for k, (_, row) in enumerate(rows) if k not in skip]
-        for offset, row in enumerate(kept, start=first):
-            if offset >= self.offset:  # saves the follower featurizing them again
-                self._rows[offset] = row
+        last = first + count - 1  # the follower learns the rows the records carry
         mistakes: int | None = None
         if wait:
             await self.wait_applied(last, timeout=WAIT_APPLIED_SECONDS)
@@ -234,29 +237,34 @@ class Labelling(Applying):
         return LabelAck(count, duplicates, mistakes, last + 1)
 
     def _label_record(
-        self, item: Any, where: str, source: str, now: float
-    ) -> dict[str, Any] | None:
-        """The checked record of one label, not yet featurized; None for a known duplicate."""
-        if not isinstance(item, Mapping):
-            raise InvalidEvent("each label must be an object with 'label'", path=where)
-        extra = set(item) - {"id", "label", "fields"}
-        if extra:
+        self, item: Any, i: int, source: str, now: float
+    ) -> tuple[dict[str, Any], Mapping[str, Any], int] | None:
+        """The checked record of label ``i`` (its fields not yet packed), its fields and class
+        index, not yet featurized; None for a known duplicate."""
+        if type(item) is not dict and not isinstance(item, Mapping):
+            raise InvalidEvent("each label must be an object with 'label'", path=f"labels[{i}]")
+        if not item.keys() <= LABEL_KEYS:
+            extra = sorted(set(item) - LABEL_KEYS, key=str)
             raise InvalidEvent(
-                f"unknown key {sorted(extra)[0]!r}; a label has 'id', 'label' and 'fields'",
-                path=where,
+                f"unknown key {extra[0]!r}; a label has 'id', 'label' and 'fields'",
+                path=f"labels[{i}]",
             )
         label = item.get("label")
-        if not isinstance(label, str) or label not in self.class_index:
+        y = self.class_index.get(label) if isinstance(label, str) else None
+        if y is None:
             raise InvalidEvent(
                 f"label must be one of {', '.join(map(repr, self.config.classes))}",
-                path=f"{where}.label",
+                path=f"labels[{i}].label",
             )
-        y = self.class_index[label]
-        event_id = check_id(item.get("id"), f"{where}.id")
-        served: int | None = None
+        event_id = item.get("id")
+        if event_id is not None and (type(event_id) is not str or not 0 < len(event_id) <= 256):
+            check_id(event_id, f"labels[{i}].id")  # raises for what is not a plain id
+        served = None
         fields = item.get("fields")
         if event_id is not None:
-            known = self.applied.get(event_id, self.pending.get(event_id))
+            known = self.applied.get(event_id)
+            if known is None:
+                known = self.pending.get(event_id)
             if known is not None:
                 if known == y:
                     return None
@@ -264,11 +272,11 @@ class Labelling(Applying):
                     f"id {event_id!r} was already labelled {self.config.classes[known]!r}; "
                     "labels are applied once. To correct a model, restore a snapshot or rebuild "
                     "excluding the source",
-                    path=f"{where}.label",
+                    path=f"labels[{i}].label",
                 )
             cached = self.cache.get(event_id, now)
             if cached is not None:
-                served = cached.served
+                served = self.config.classes[cached.served]
                 if fields is None:
                     fields = cached.fields
         if fields is None:
@@ -277,17 +285,11 @@ class Labelling(Applying):
                 "scored here); send the event's 'fields' with the label"
                 if event_id is not None
                 else "a label without an id must carry the event's 'fields'",
-                path=f"{where}.fields",
+                path=f"labels[{i}].fields",
             )
-        fields = self._fields(fields, f"{where}.fields")
-        return {
-            "id": event_id,
-            "label": label,
-            "fields": dict(fields),
-            "source": source,
-            "served": None if served is None else self.config.classes[served],
-            "time": now,
-        }
+        fields = self._fields(fields, f"labels[{i}].fields")
+        record = {"id": event_id, "label": label, "source": source, "served": served, "time": now}
+        return record, fields if type(fields) is dict else dict(fields), y
 
     def _drain(self) -> None:
         """Apply every ready record from the applied offset on, as one batch."""

@@ -30,14 +30,16 @@ from .segments import (
     HEADER,
     MAGIC,
     MAX_RECORD_BYTES,
+    READ_CHUNK,
     SPARSE_EVERY,
     SUFFIX,
     VERSION,
     CorruptLog,
+    OffsetOutOfRange,
     create_segment,
     frame_records,
     fsync_dir,
-    parse_records,
+    read_segment,
     recover,
     segment_path,
 )
@@ -57,14 +59,9 @@ __all__ = [
     "OffsetOutOfRange",
 ]
 
-READ_CHUNK = 1 << 20
 READ_BATCH = 1000  # payloads per list of the default `read_batches`
 
 _log = logging.getLogger("thresher.log")
-
-
-class OffsetOutOfRange(LookupError):
-    """A read started below the first retained offset or above the head."""
 
 
 class LabelLog(abc.ABC):
@@ -148,6 +145,9 @@ class FileLog(LabelLog):
         self._bases, self._written, self._pos = found.bases, found.written, found.pos
         self.recovered_bytes_dropped = found.dropped
         self.recovered_at: int | None = found.at  # offset where a torn tail was cut, if one was
+        # Start-up replays the last segment right after recovery read and checked all of it:
+        # the first read takes those payloads instead of reading and checking them again.
+        self._recovered: tuple[int, list[bytes]] | None = (found.bases[-1], found.tail)
         base = self._bases[-1]
         self._fd = os.open(self._path(base), os.O_WRONLY | os.O_APPEND)
         self._durable = self._written
@@ -192,6 +192,7 @@ class FileLog(LabelLog):
             if self._pos + len(buf) > self.segment_bytes and self._written > self._bases[-1]:
                 await self._rotate()
             first = self._written
+            self._recovered = None  # only the first read, before anything changes, uses it
             self._write(buf)
             self._note_positions(first, payloads)
             self._written += len(payloads)
@@ -336,51 +337,29 @@ class FileLog(LabelLog):
             raise OffsetOutOfRange(
                 f"offset {start} is outside the label log, which holds {self.first()}..{end}"
             )
-        offset = start
+        offset, recovered, self._recovered = start, self._recovered, None
         while offset < end:
             i = bisect.bisect_right(self._bases, offset) - 1
             if i < 0:
                 raise OffsetOutOfRange(f"offset {offset} was trimmed while it was being read")
             base = self._bases[i]
             stop = min(end, self._bases[i + 1]) if i + 1 < len(self._bases) else end
-            async for batch in self._segment(base, offset, stop):
+            if recovered is not None and recovered[0] == base:
+                held = recovered[1][offset - base : stop - base]
+                for k in range(0, len(held), READ_BATCH):
+                    yield held[k : k + READ_BATCH]
+                offset += len(held)
+                recovered = None
+                if offset == stop:
+                    continue
+            index = self._index.setdefault(base, [HEADER.size])
+            async for batch in read_segment(self._path(base), base, index, offset, stop):
                 yield batch
                 offset += len(batch)
 
-    async def _segment(self, base: int, start: int, stop: int) -> AsyncIterator[list[bytes]]:
-        """Batches of the records ``start..stop`` of one segment, every CRC checked."""
-        path = self._path(base)
-        index = self._index.setdefault(base, [HEADER.size])
-        k = min((start - base) // SPARSE_EVERY, len(index) - 1)
-        at, number = index[k], k * SPARSE_EVERY
-        try:
-            handle = open(path, "rb")  # noqa: SIM115 - closed in the finally below
-        except FileNotFoundError:
-            raise OffsetOutOfRange(f"offset {start} was trimmed while it was being read") from None
-        try:
-            handle.seek(at)
-            buf = b""
-            while base + number < stop:
-                chunk = await asyncio.to_thread(handle.read, READ_CHUNK)
-                if not chunk:
-                    raise CorruptLog(
-                        path, at, f"segment ends at offset {base + number}, {stop} expected"
-                    )
-                buf += chunk
-                found, used, reason = parse_records(buf, 0, stop - base - number, number, index, at)
-                if reason is not None:
-                    raise CorruptLog(path, at + used, reason)
-                skip = max(0, start - base - number)
-                number += len(found)
-                at += used
-                buf = buf[used:]
-                if len(found) > skip:
-                    yield found[skip:]
-        finally:
-            handle.close()
-
     async def trim(self, below: int) -> None:
         """Delete whole segments whose records are all below ``below``; never the active one."""
+        self._recovered = None
         doomed: list[int] = []
         while len(self._bases) > 1 and self._bases[1] <= below:
             doomed.append(self._bases.pop(0))

@@ -72,7 +72,6 @@ class Model(Labelling):
         self.apply_on_append = apply_on_append
         self.shared = log if isinstance(log, SharedLog) else None
         self._outcomes: dict[int, bool] = {}
-        self._rows: dict[int, Any] = {}  # shared log: rows of records admitted here, by offset
         self.spec = FeatureSpec.from_json(config.features)
         self.featurizer = Featurizer(self.spec, config.bits, config.seed, config.signed)
         self.class_index = {c: i for i, c in enumerate(config.classes)}

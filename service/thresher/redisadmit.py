@@ -29,9 +29,10 @@ WAIT_MS = 1000  # how long an append waits for --redis-wait-replicas confirmatio
 ADMITTED, CONFLICT, GONE, FROZEN = 0, 1, 2, 3  # the first element of the script's answer
 
 # KEYS: seq, stream, ids, live, freeze, excluded, previous ids, legacy raw ids. ARGV: token, n,
-# window (0: none), then n quadruples (id key or "", raw id or "", label, payload). A record
-# from an excluded source is appended but never applied, so its id stays open, as in the file
-# log; only then are payloads decoded here.
+# window (0: none), then n quintuples (id key or "", raw id or "", label, source, payload). A
+# record from an excluded source is appended but never applied, so its id stays open, as in the
+# file log. The payloads are never decoded here: the script's msgpack reader cannot read the
+# bins of a record (`records`).
 APPEND = """
 if redis.call('GET', KEYS[4]) ~= ARGV[1] then return {2} end
 if redis.call('EXISTS', KEYS[5]) == 1 then return {3} end
@@ -40,36 +41,32 @@ local legacy = redis.call('EXISTS', KEYS[8]) == 1
 local dup, open = {}, {}
 if redis.call('SCARD', KEYS[6]) > 0 then
   for i = 0, n - 1 do
-    local ok, record = pcall(cmsgpack.unpack, ARGV[7 + 4 * i])
-    if ok and type(record) == 'table' and type(record['source']) == 'string'
-        and redis.call('SISMEMBER', KEYS[6], record['source']) == 1 then
-      open[i] = true
-    end
+    if redis.call('SISMEMBER', KEYS[6], ARGV[7 + 5 * i]) == 1 then open[i] = true end
   end
 end
 local function known(i)
-  local key = ARGV[4 + 4 * i]
+  local key = ARGV[4 + 5 * i]
   local have = redis.call('HGET', KEYS[3], key) or redis.call('HGET', KEYS[7], key)
-  if not have and legacy then have = redis.call('HGET', KEYS[8], ARGV[5 + 4 * i]) end
+  if not have and legacy then have = redis.call('HGET', KEYS[8], ARGV[5 + 5 * i]) end
   return have
 end
 for i = 0, n - 1 do
-  if ARGV[4 + 4 * i] ~= '' then
+  if ARGV[4 + 5 * i] ~= '' then
     local have = known(i)
     if have then
-      if have ~= ARGV[6 + 4 * i] then return {1, i, have} end
+      if have ~= ARGV[6 + 5 * i] then return {1, i, have} end
       dup[i] = true
     end
   end
 end
 local first, count = -1, 0
 for i = 0, n - 1 do
-  local key = ARGV[4 + 4 * i]
+  local key = ARGV[4 + 5 * i]
   if not dup[i] and key ~= '' and not open[i] then
     if known(i) then
       dup[i] = true  -- an id earlier in this batch
     else
-      redis.call('HSET', KEYS[3], key, ARGV[6 + 4 * i])
+      redis.call('HSET', KEYS[3], key, ARGV[6 + 5 * i])
       if window > 0 and redis.call('HLEN', KEYS[3]) >= window then
         redis.call('RENAME', KEYS[3], KEYS[7])  -- as AppliedIds rotates
       end
@@ -77,7 +74,7 @@ for i = 0, n - 1 do
   end
   if not dup[i] then
     local seq = redis.call('INCR', KEYS[1])
-    redis.call('XADD', KEYS[2], '0-' .. seq, 'd', ARGV[7 + 4 * i])
+    redis.call('XADD', KEYS[2], '0-' .. seq, 'd', ARGV[8 + 5 * i])
     if first < 0 then first = seq - 1 end
     count = count + 1
   end
@@ -89,15 +86,18 @@ return out
 
 
 async def admit(
-    log: RedisLog, payloads: list[bytes], keys: list[tuple[str | None, str]]
+    log: RedisLog, payloads: list[bytes], keys: list[tuple[str | None, str, str]]
 ) -> tuple[int, list[int], tuple[int, str] | None]:
-    """Append what is new, atomically: (first offset, duplicate positions, conflict)."""
+    """Append what is new, atomically: (first offset, duplicate positions, conflict).
+
+    ``keys`` holds each record's (id, label, source), which the script checks.
+    """
     args: list[Any] = [log.token, len(payloads), log.state.applied_window]
-    for (event_id, label), payload in zip(keys, payloads, strict=True):
+    for (event_id, label, source), payload in zip(keys, payloads, strict=True):
         if event_id is None:
-            args += ["", "", label, payload]
+            args += ["", "", label, source, payload]
         else:
-            args += [id_key(event_id), event_id, label, payload]
+            args += [id_key(event_id), event_id, label, source, payload]
     ks = [log.keys.seq, log.keys.stream, log.keys.ids, log.keys.live, log.keys.freeze,
           log.keys.excluded, log.keys.previous, log.keys.legacy]  # fmt: skip
     want, confirmed = log.state.wait_replicas, None

@@ -77,6 +77,12 @@ def _labels_from(offset: int, entries: list[Any]) -> bool:
     )
 
 
+def _drop(task: asyncio.Task[Any]) -> None:
+    """Cancel a read nobody will use; its failure, if it failed, is of no interest."""
+    task.cancel()
+    task.add_done_callback(lambda done: done.cancelled() or done.exception())
+
+
 def unavailable(exc: BaseException, what: str) -> LogUnavailable:
     return LogUnavailable(f"Redis is unreachable ({exc}); {what}", retry_after=RETRY_AFTER)
 
@@ -141,7 +147,7 @@ class RedisLog(LabelLog):
 
     async def append(self, payloads: list[bytes]) -> int:
         """Append records that need no exactly-once check; returns the first offset."""
-        first, _, _ = await self.admit(payloads, [(None, "")] * len(payloads))
+        first, _, _ = await self.admit(payloads, [(None, "", "")] * len(payloads))
         return first
 
     async def read(self, start: int) -> AsyncIterator[tuple[int, bytes]]:
@@ -204,9 +210,10 @@ class RedisLog(LabelLog):
     # -- shared by every replica ------------------------------------------------------------
 
     async def admit(
-        self, payloads: list[bytes], keys: list[tuple[str | None, str]]
+        self, payloads: list[bytes], keys: list[tuple[str | None, str, str]]
     ) -> tuple[int, list[int], tuple[int, str] | None]:
-        """Append what is new, atomically: (first offset, duplicate positions, conflict)."""
+        """Append what is new, atomically: (first offset, duplicate positions, conflict);
+        ``keys`` holds each record's (id, label, source)."""
         # The script's module imports this one, as redisswitch does.
         from .redisadmit import admit
 
@@ -277,29 +284,48 @@ class RedisLog(LabelLog):
 
     async def _follow(self, current: Callable[[], Model | None], store: RedisSnapshots) -> None:
         delay, head_due, index_due = BACKOFF_MIN, 0.0, time.monotonic() + INDEX_EVERY
-        while not self._closing and (model := current()) is not None and model.log is self:
-            try:
-                now = time.monotonic()
-                if now >= head_due:
-                    await self._refresh_head(model)
-                    head_due = now + HEAD_EVERY
-                if now >= index_due:
-                    store.adopt(await self.state.client.hgetall(store.keys.snaps))
-                    index_due = now + INDEX_EVERY
-                reply = await self.state.reader.xread(
-                    {self.keys.stream: _sid(model.offset - 1)}, count=READ_BATCH, block=BLOCK_MS
-                )
-                self.state.up()
-                for _, entries in reply or []:
-                    await self._apply(model, entries, store)
-                delay = BACKOFF_MIN
-            except (*FAILURES, Unavailable) as exc:
-                self.state.failed(exc)
-                await asyncio.sleep(delay)
-                delay = min(delay * 2, BACKOFF_MAX)
-            except Exception:  # a bad record: stop here, visibly (the lag grows), and retry
-                _log.exception("model %s: cannot apply stream offset %d", self.name, model.offset)
-                await asyncio.sleep(BACKOFF_MAX)
+        # The next read, sent before a batch is applied so Redis works while this replica
+        # learns: (its first offset, its task); dropped if the batch moved the model elsewhere.
+        ahead: tuple[int, asyncio.Task[Any]] | None = None
+        try:
+            while not self._closing and (model := current()) is not None and model.log is self:
+                try:
+                    now = time.monotonic()
+                    if now >= head_due:
+                        await self._refresh_head(model)
+                        head_due = now + HEAD_EVERY
+                    if now >= index_due:
+                        store.adopt(await self.state.client.hgetall(store.keys.snaps))
+                        index_due = now + INDEX_EVERY
+                    sent, ahead = ahead, None
+                    reply = await self._read(model.offset, sent)
+                    self.state.up()
+                    if reply and reply[-1][1]:
+                        after = _offset(reply[-1][1][-1][0]) + 1
+                        ahead = (after, asyncio.ensure_future(self._read(after, None)))
+                    for _, entries in reply or []:
+                        await self._apply(model, entries, store)
+                    delay = BACKOFF_MIN
+                except (*FAILURES, Unavailable) as exc:
+                    self.state.failed(exc)
+                    await asyncio.sleep(delay)
+                    delay = min(delay * 2, BACKOFF_MAX)
+                except Exception:  # a bad record: stop here, visibly (the lag grows), and retry
+                    _log.exception("model %s: cannot apply offset %d", self.name, model.offset)
+                    await asyncio.sleep(BACKOFF_MAX)
+        finally:
+            if ahead is not None:
+                _drop(ahead[1])
+
+    async def _read(self, offset: int, sent: tuple[int, asyncio.Task[Any]] | None) -> Any:
+        """The XREAD reply from ``offset`` on: the one ``sent`` ahead when it starts there."""
+        if sent is not None:
+            if sent[0] == offset:
+                return await sent[1]
+            _drop(sent[1])
+        return await self.state.reader.xread(
+            {self.keys.stream: _sid(offset - 1)}, count=READ_BATCH, block=BLOCK_MS
+        )
 
     async def catch_up(self, model: Model, store: RedisSnapshots) -> int:
         """Apply the stream from the model's offset to the head as read now; the count."""

@@ -11,10 +11,12 @@ acknowledged) and refuses damage anywhere else with :class:`CorruptLog`.
 
 from __future__ import annotations
 
+import asyncio
 import logging
 import os
 import struct
 import zlib
+from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import NamedTuple
 
@@ -24,9 +26,14 @@ HEADER = struct.Struct("<8sHHQ")
 FRAME = struct.Struct("<II")
 SUFFIX = ".seg"
 MAX_RECORD_BYTES = 16 * 1024 * 1024
+READ_CHUNK = 1 << 20
 SPARSE_EVERY = 256  # one remembered file position per this many records of a segment
 
 _log = logging.getLogger("thresher.log")
+
+
+class OffsetOutOfRange(LookupError):
+    """A read started below the first retained offset or above the head."""
 
 
 class CorruptLog(Exception):
@@ -90,6 +97,45 @@ def parse_records(
     return out, pos, None
 
 
+async def read_segment(
+    path: Path, base: int, index: list[int], start: int, stop: int
+) -> AsyncIterator[list[bytes]]:
+    """Batches of the records ``start..stop`` of the segment at ``path`` whose first offset is
+    ``base``, every CRC checked; ``index`` is its sparse index, extended as the scan passes."""
+    k = min((start - base) // SPARSE_EVERY, len(index) - 1)
+    at, number = index[k], k * SPARSE_EVERY
+    try:
+        handle = open(path, "rb")  # noqa: SIM115 - closed in the finally below
+    except FileNotFoundError:
+        raise OffsetOutOfRange(f"offset {start} was trimmed while it was being read") from None
+    handle.seek(at)
+    # The next chunk is read in a worker thread while this one is parsed and its records
+    # applied, so a replay does not wait for each read in turn.
+    ahead = asyncio.ensure_future(asyncio.to_thread(handle.read, READ_CHUNK))
+    try:
+        buf = b""
+        while base + number < stop:
+            chunk = await ahead
+            ahead = asyncio.ensure_future(asyncio.to_thread(handle.read, READ_CHUNK))
+            if not chunk:
+                raise CorruptLog(
+                    path, at, f"segment ends at offset {base + number}, {stop} expected"
+                )
+            buf += chunk
+            found, used, reason = parse_records(buf, 0, stop - base - number, number, index, at)
+            if reason is not None:
+                raise CorruptLog(path, at + used, reason)
+            skip = max(0, start - base - number)
+            number += len(found)
+            at += used
+            buf = buf[used:]
+            if len(found) > skip:
+                yield found[skip:]
+    finally:
+        await asyncio.wait({ahead})  # a worker thread must not read a closed file
+        handle.close()
+
+
 def fsync_dir(directory: Path) -> None:
     """Make the directory's entries (created, renamed or removed files) durable."""
     fd = os.open(directory, os.O_RDONLY)
@@ -139,6 +185,7 @@ class Recovery(NamedTuple):
     pos: int  # the file position where the last segment's next record goes
     dropped: int  # bytes cut off a torn or corrupt tail
     at: int | None  # offset where a tail was cut, if one was
+    tail: list[bytes]  # the payloads of the last segment, every CRC checked
 
 
 def recover(directory: Path, index: dict[int, list[int]]) -> Recovery:
@@ -172,7 +219,7 @@ def recover(directory: Path, index: dict[int, list[int]]) -> Recovery:
         with open(path, "r+b") as handle:
             handle.truncate(end)
             os.fsync(handle.fileno())
-    return Recovery(bases, written, end, dropped, at)
+    return Recovery(bases, written, end, dropped, at, found)
 
 
 def _warn_cut(
