@@ -22,8 +22,8 @@ async def test_promtool_check_metrics_on_live_answer(tmp_path: Path) -> None:
             async with session.post(server.url + "/api/models", json=MODEL) as resp:
                 assert resp.status == 201
             labels = [
-                {"label": c, "fields": {"topic": c, "words": ["refund", c]}}
-                for c in ("billing", "bug", "other") * 20
+                {"id": f"t-{i}", "label": c, "fields": {"topic": c, "words": ["refund", c]}}
+                for i, c in enumerate(("billing", "bug", "other") * 20)
             ]
             async with session.post(
                 server.url + "/api/models/tickets/labels",
@@ -41,6 +41,9 @@ async def test_promtool_check_metrics_on_live_answer(tmp_path: Path) -> None:
             server.stop()
     assert 'error="wrong_class"' in text
     assert 'thresher_labels_applied_total{model="tickets",source="triage"} 60.0' in text
+    assert 'thresher_applied_ids{model="tickets"} 60.0' in text
+    applied_bytes = [ln for ln in text.splitlines() if ln.startswith("thresher_applied_ids_bytes{")]
+    assert len(applied_bytes) == 1 and float(applied_bytes[0].split()[-1]) > 0, applied_bytes
     result = subprocess.run(
         [promtool, "check", "metrics"], input=text, capture_output=True, text=True, timeout=60
     )

@@ -193,6 +193,8 @@ class ModelCollector(Collector):
             fams.collision.add_metric([name], load)
             fams.bits_low.add_metric([name], 1.0 if load > HASH_LOAD_WARNING else 0.0)
             fams.cache.add_metric([name], len(model.cache))
+            fams.applied_ids.add_metric([name], len(model.applied))
+            fams.applied_bytes.add_metric([name], model.applied.nbytes)
             fams.last_update.add_metric([name], model.last_update)
             info = m.last_snapshot.get(name)
             fams.snap_time.add_metric([name], info.time if info else 0.0)
@@ -273,6 +275,14 @@ class _Families:
         )
         self.cache = GaugeMetricFamily(
             "thresher_event_cache_entries", "Scored events held for labelling by id.", labels=m
+        )
+        self.applied_ids = GaugeMetricFamily(
+            "thresher_applied_ids",
+            "Labelled ids remembered for exactly-once training (see --applied-window).",
+            labels=m,
+        )
+        self.applied_bytes = GaugeMetricFamily(
+            "thresher_applied_ids_bytes", "Memory of the applied-id index's arrays.", labels=m
         )
         self.last_update = GaugeMetricFamily(
             "thresher_last_update_timestamp_seconds", "Time of the last applied label.", labels=m
