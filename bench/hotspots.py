@@ -107,7 +107,8 @@ def fold(raw: str, focus: str | None = None) -> dict[str, Any]:
 
 
 def _py_spy() -> str:
-    path = shutil.which("py-spy")
+    # Beside the interpreter first: a venv's tools are there even when its bin is not on PATH.
+    path = shutil.which("py-spy", path=str(Path(sys.executable).parent)) or shutil.which("py-spy")
     if path is None:
         raise RuntimeError("py-spy is not installed (pip install py-spy)")
     return path
