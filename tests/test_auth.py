@@ -294,10 +294,8 @@ def test_www_authenticate_fallback() -> None:
     assert www_authenticate(Unauthorized("no")) == 'Bearer realm="thresher"'
 
 
-def test_every_hash_is_compared(
-    store_and_secrets: tuple[TokenStore, dict[str, str]], monkeypatch: pytest.MonkeyPatch
-) -> None:
-    store, found = store_and_secrets
+def _count_comparisons(monkeypatch: pytest.MonkeyPatch) -> list[int]:
+    """A list that gains an item at each constant-time comparison the store makes."""
     calls: list[int] = []
     real = hmac.compare_digest
 
@@ -306,6 +304,14 @@ def test_every_hash_is_compared(
         return real(a, b)
 
     monkeypatch.setattr(auth.hmac, "compare_digest", counting)
+    return calls
+
+
+def test_every_hash_is_compared(
+    store_and_secrets: tuple[TokenStore, dict[str, str]], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    store, found = store_and_secrets
+    calls = _count_comparisons(monkeypatch)
     # A match on the first entry, the last entry and no entry all cost one comparison each.
     for header in (f"Bearer {found['scorer']}", f"Bearer {found['spam-only']}"):
         calls.clear()
@@ -323,14 +329,7 @@ def test_an_accepted_header_is_remembered_and_only_it(
     store, found = store_and_secrets
     header = f"Bearer {found['labeller']}"
     first = store.authenticate(header)
-    calls: list[int] = []
-    real = hmac.compare_digest
-
-    def counting(a: bytes, b: bytes) -> bool:
-        calls.append(1)
-        return real(a, b)
-
-    monkeypatch.setattr(auth.hmac, "compare_digest", counting)
+    calls = _count_comparisons(monkeypatch)
     # The same value again is known: no hashing, no comparisons, the same principal.
     assert store.authenticate(header) is first and calls == []
     # A value that differs in any way, even one accepted another way, is checked in full.
