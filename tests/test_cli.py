@@ -353,6 +353,32 @@ def test_replay_online_and_offline_agree_and_rerun_is_all_duplicates(
         assert reopened.stop() == 0
 
 
+def test_offline_replay_with_an_applied_window_matches_a_windowed_server(
+    definition: Path, tmp_path: Path
+) -> None:
+    path = tmp_path / "events.jsonl"
+    write_jsonl(path, listings(300, seed=7))
+    windowed = Server(tmp_path / "windowed", "--applied-window", "100")
+    try:
+        online = [ok_json("replay", str(path), "--model", "rp", "--create", str(definition),
+                          url=windowed.url) for _ in range(2)]  # fmt: skip
+    finally:
+        assert windowed.stop() == 0
+    offline_dir = str(tmp_path / "offline")
+    offline = [ok_json("replay", str(path), "--model", "rp", "--create", str(definition),
+                       "--data-dir", offline_dir, "--applied-window", "100")
+               for _ in range(2)]  # fmt: skip
+    # Ids older than the window are trained again on the second run, the same way in both.
+    assert online[1]["applied"] > 0 and online[1]["duplicates"] < 300
+    for a, b in zip(online, offline, strict=True):
+        assert (a["applied"], a["duplicates"], a["mistakes"]) == (
+            b["applied"], b["duplicates"], b["mistakes"])  # fmt: skip
+        assert a["weights_digest"] == b["weights_digest"]
+    line = one_line_error(cli("replay", str(path), "--model", "rp", "--applied-window", "5",
+                              url="http://127.0.0.1:1"), 2)  # fmt: skip
+    assert "--applied-window goes with --data-dir" in line
+
+
 def test_an_interrupted_replay_resumes_to_the_same_model(
     server: Server, definition: Path, tmp_path: Path
 ) -> None:

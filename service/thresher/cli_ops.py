@@ -334,7 +334,8 @@ HELP = {
                "into a stopped server's data directory (--data-dir). Events with an id are "
                "applied once: re-running a file applies nothing twice, so an interrupted run "
                "resumes by running it again (a server with --applied-window N recognises only "
-               "the last N to 2N ids). Events WITHOUT an id are applied again on every run."),
+               "the last N to 2N ids; offline, give replay the server's --applied-window). "
+               "Events WITHOUT an id are applied again on every run."),
     "demo": ("run the demo: a model, invented traffic and the dashboard", "Start a service on "
              "127.0.0.1 in this process, create the demo model and feed it invented marketplace "
              "listings: each batch is scored, then labelled after a simulated review. The fraud "

@@ -49,6 +49,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     add("--model", required=True, metavar="NAME", help="the model to label")
     add("--data-dir", metavar="DIR", help="replay offline into this data directory instead of "
         "through --url (its server must be stopped)")  # fmt: skip
+    add("--applied-window", type=number_type(int, 0), default=0, metavar="N",
+        help="with --data-dir: the server's --applied-window, so the ids replayed are remembered "
+        "as that server remembers them (default 0, every id)")  # fmt: skip
     add("--source", default="replay", metavar="NAME",
         help="label source recorded with every label (default replay)")  # fmt: skip
     add("--batch", type=number_type(int, 1, high=MAX_BATCH), default=500, metavar="N",
@@ -126,7 +129,8 @@ class Target:
         if create is None and not (Path(args.data_dir) / "models" / args.model).is_dir():
             raise NotFound(f"{args.data_dir} has no model {args.model!r}; pass --create FILE "
                            "with its definition to create it")  # fmt: skip
-        registry = ModelRegistry(Settings.from_mapping({"data_dir": args.data_dir}))
+        registry = ModelRegistry(Settings.from_mapping(
+            {"data_dir": args.data_dir, "applied_window": args.applied_window}))  # fmt: skip
         try:
             await registry.open()
         except Conflict:
@@ -314,6 +318,9 @@ def run(args: argparse.Namespace) -> int:
     """The ``replay`` command: its summary, and exit 1 on a bad line or a failed call."""
     if args.data_dir and args.url:
         raise CommandFailed("give --url or --data-dir, not both", EXIT_USAGE)
+    if args.applied_window and not args.data_dir:
+        raise CommandFailed("--applied-window goes with --data-dir; a server (--url) applies "
+                            "its own", EXIT_USAGE)  # fmt: skip
     fmt = detect_format(args.file, args.format)
     create = _read_definition(args.create, args.model) if args.create else None
     tally = Tally()
