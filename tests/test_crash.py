@@ -120,7 +120,8 @@ async def _feed_until_killed(
 
 @pytest.mark.slow
 async def test_sigkill_loses_no_acknowledged_label(tmp_path: Path) -> None:
-    labels = _labels(16000, seed=11)
+    # Enough labels that the feed is still running at every kill, fast as label requests are.
+    labels = _labels(40000, seed=11)
     batches = [labels[i : i + 5] for i in range(0, len(labels), 5)]
     rng = random.Random(5)
     server = Server(tmp_path / "crashy")
