@@ -150,19 +150,8 @@ class EventCache:
             if size is None
             else max(0, int(size))
         )
-        old = self._entries.pop(event_id, None)
-        if old is not None:
-            self._bytes -= old[_SIZE]
-        if charge > self.max_bytes:
-            self.oversize += 1
-            return False
-        self._expire_front(now)
-        self._entries[event_id] = (_pack(self._packer, fields), served, now, charge)
-        self._bytes += charge
-        while len(self._entries) > self.max_entries or self._bytes > self.max_bytes:
-            self._drop_oldest()
-            self.evictions += 1
-        return True
+        self.put_many([(event_id, fields, served)], now, charge)
+        return charge <= self.max_bytes
 
     def put_many(
         self, items: Iterable[tuple[str, Mapping[str, Any], int]], now: float, size: int
