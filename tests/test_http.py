@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 import json
 from collections.abc import AsyncIterator, Callable
 from pathlib import Path
@@ -230,6 +231,32 @@ async def test_score_errors_are_problem_details(
     assert problem["type"] == f"/problems/{slug}" and problem["status"] == status
     assert problem["path"] == path
     assert problem["detail"]
+
+
+async def test_concurrent_score_requests_answer_as_sequential_ones(api: Api) -> None:
+    # Requests that reach a model in one loop turn are scored as one batch (thresher.scoring):
+    # over a real socket, each must still get exactly its own answer, and a bad one its error.
+    await _listing_model(api)
+    labels = [{"label": "fraud" if i % 2 == 0 else "fine", "fields": _event(i, i % 2 == 0)}
+              for i in range(40)]  # fmt: skip
+    status, _, _ = await api.call(
+        "POST", "/api/models/listings/labels", {"labels": labels, "source": "test"}
+    )
+    assert status == 200
+    score = "/api/models/listings/score"
+    bodies: list[Any] = [
+        {"events": [{"id": f"c{i}", "fields": _event(i, i % 3 == 0)}]} for i in range(30)
+    ]
+    bodies[7] = {"events": [{"fields": {"price": "cheap"}}]}
+    bodies[19] = {"events": "none"}
+    sequential = [await api.call("POST", score, body) for body in bodies]
+    concurrent = await asyncio.gather(*(api.call("POST", score, body) for body in bodies))
+    for (status_a, body_a, _), (status_b, body_b, _) in zip(sequential, concurrent, strict=True):
+        assert (status_a, body_a) == (status_b, body_b)
+    assert [s for s, _, _ in concurrent].count(200) == 28
+    assert concurrent[7][0] == 422 and concurrent[7][1]["path"] == "events[0].fields.price"
+    assert concurrent[19][0] == 422 and concurrent[19][1]["path"] == "events"
+    assert len({b["results"][0]["label"] for s, b, _ in concurrent if s == 200}) == 2
 
 
 async def test_malformed_media_size_and_routes(make_api: Callable[..., Any]) -> None:

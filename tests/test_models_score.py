@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import asyncio
 from typing import Any
 
 import pytest
@@ -10,6 +11,7 @@ from thresher.demo_traffic import DEMO_MODEL, ListingTraffic
 from thresher.errors import InvalidEvent
 from thresher.eventcache import EventCache
 from thresher.models import Model, ModelConfig
+from thresher.scoring import GATHER_EVENTS
 
 
 class _NoLog:
@@ -114,3 +116,90 @@ def test_events_outside_the_common_shape_take_the_full_checks() -> None:
         with pytest.raises(InvalidEvent) as caught:
             model.score([event], explain=0, now=1.0)
         assert caught.value.path == path, (event, caught.value)
+
+
+def _cache(model: Model) -> dict[str, Any]:
+    return dict(model.cache._entries)
+
+
+def test_requests_scored_together_answer_as_each_scored_alone() -> None:
+    # Two models trained alike: one scores the requests together, the other one at a time.
+    together, alone = (_model(["fine", "fraud", "spam"], "averaged") for _ in range(2))
+    events = _train(together, 1200)
+    _train(alone, 1200)
+    bad_value = {"id": "bad", "fields": {"price": "not a number", "title": "x"}}
+    requests: list[tuple[list[Any], int, int]] = [
+        (events[0:1], 0, 300),
+        (events[1:5], 3, 2000),  # explained, and a different byte charge per event
+        ([{"fields": []}], 0, 40),  # refused while checking the events
+        (events[5:6], 0, 250),
+        ([events[6], bad_value], 0, 600),  # refused by the featurizer: the whole batch again
+        (events[7:40], 0, 9000),
+    ]
+    outs = together.score_many(requests, 5.0)
+    expected: list[Any] = []
+    for events_, explain, hint in requests:
+        try:
+            expected.append(alone.score(events_, explain=explain, now=5.0, bytes_hint=hint))
+        except InvalidEvent as error:
+            expected.append(error)
+    assert len(outs) == len(expected)
+    for got, want in zip(outs, expected, strict=True):
+        if isinstance(want, InvalidEvent):
+            assert isinstance(got, InvalidEvent)
+            assert (got.path, str(got)) == (want.path, str(want))
+        else:
+            assert got == want
+    assert outs[4].path == "events[1].fields.price"  # numbered within its own request
+    assert together.scored == alone.scored == 1 + 4 + 1 + 33
+    assert _cache(together) == _cache(alone)  # the same entries, each charged its own bytes
+    assert len({r["label"] for r in outs[5]}) > 1  # type: ignore[union-attr]
+
+
+async def test_requests_gathered_in_one_loop_turn_share_one_batch() -> None:
+    model = _model(["fine", "fraud"], "classic")
+    events = _train(model, 1500)
+    batches: list[list[int]] = []
+    score_many = model.score_many
+
+    def watched(requests: Any, now: float) -> Any:
+        batches.append([len(r[0]) for r in requests])
+        return score_many(requests, now)
+
+    model.score_many = watched  # type: ignore[method-assign]
+    answers = await asyncio.gather(*(model.gather([e], 0, 300) for e in events[:60]))
+    assert batches == [[1] * 60]
+    expected = score_many([([e], 0, 300) for e in events[:60]], 6.0)
+    assert answers == expected
+
+    # More than a batch's worth waits for the next loop turn; a big request is scored at once.
+    batches.clear()
+    hundreds = [events[k : k + 100] for k in range(0, 200, 100)] * 6
+    answers = await asyncio.gather(*(model.gather(chunk, 0, 300) for chunk in hundreds))
+    assert batches == [[100] * 10, [100] * 2]
+    assert [len(a) for a in answers] == [100] * 12
+    big = await model.gather(events[: GATHER_EVENTS + 1], 0, 300)
+    assert len(big) == GATHER_EVENTS + 1 and len(batches) == 3  # score_many of one request
+
+
+async def test_a_bad_request_in_a_gathered_batch_fails_alone() -> None:
+    model = _model(["fine", "fraud"], "classic")
+    events = _train(model, 800)
+    bad = [{"fields": {"price": "not a number"}}]
+    calls = [model.gather([e], 0, 300) for e in events[:5]]
+    calls.insert(2, model.gather(bad, 0, 300))
+    answers = await asyncio.gather(*calls, return_exceptions=True)
+    assert isinstance(answers[2], InvalidEvent) and answers[2].path == "events[0].fields.price"
+    good = [a for k, a in enumerate(answers) if k != 2]
+    assert good == [model.score([e], explain=0, now=1.0) for e in events[:5]]
+
+
+async def test_a_cancelled_request_is_left_out_of_its_batch() -> None:
+    model = _model(["fine", "fraud"], "classic")
+    events = _train(model, 400)
+    tasks = [asyncio.ensure_future(model.gather([e], 0, 300)) for e in events[:5]]
+    await asyncio.sleep(0)  # every task has queued its request; the batch runs after this
+    tasks[2].cancel()
+    done = await asyncio.gather(*tasks, return_exceptions=True)
+    assert isinstance(done[2], asyncio.CancelledError)
+    assert model.scored == 4 and events[2]["id"] not in model.cache

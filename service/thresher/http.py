@@ -106,10 +106,9 @@ async def score(request: web.Request) -> web.Response:
     explain = body.get("explain", 0)
     if isinstance(explain, bool) or not isinstance(explain, int) or not 0 <= explain <= 50:
         raise InvalidInput("explain must be an integer from 0 to 50", path="explain")
-    now = time.time()
-    results = model.score(events, explain=explain, now=now, bytes_hint=request.content_length or 0)
+    results = await model.gather(events, explain, request.content_length or 0)
     if model.shared is not None:  # skipped, not awaited, on the hot path of a file log
-        await model.share(events, results, now)
+        await model.share(events, results, time.time())
     return answer(request, {"results": results})
 
 

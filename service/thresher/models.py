@@ -2,11 +2,12 @@
 
 `Model` is where a request's events become learning: it validates and featurizes, consults the
 scored-event cache and the applied-id index, appends label records to the log, and applies them
-to the learner strictly in log order. The labelling path lives in `labelling` (requests) and
-`applying` (log order learning), which `Model` inherits. It never touches files or sockets
-itself; the log and the snapshot store are handed in by `lifecycle.ModelRegistry`, which owns
-creating, loading, snapshotting, restoring, rebuilding and deleting models. The definition it
-is built from, `ModelConfig`, is parsed in `model_config` and re-exported here.
+to the learner strictly in log order. The scoring path lives in `scoring`, the labelling path in
+`labelling` (requests) and `applying` (log order learning), all of which `Model` inherits. It
+never touches files or sockets itself; the log and the snapshot store are handed in by
+`lifecycle.ModelRegistry`, which owns creating, loading, snapshotting, restoring, rebuilding and
+deleting models. The definition it is built from, `ModelConfig`, is parsed in `model_config`
+and re-exported here.
 """
 
 from __future__ import annotations
@@ -14,28 +15,27 @@ from __future__ import annotations
 import asyncio
 import hashlib
 from collections import deque
-from collections.abc import Mapping, Sequence
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 
 from .appliedids import AppliedIds
 from .applying import RECENT_MISTAKES
-from .errors import InvalidConfig, InvalidEvent, Unavailable
+from .errors import InvalidConfig, Unavailable
 from .eventcache import EventCache
 from .features import FeatureSpec, Featurizer
 from .labelling import LabelAck, Labelling, SharedLog
-from .labelling import check_id as _event_id
 from .labellog import LabelLog
 from .learner import Learner
 from .model_config import RULES, ModelConfig
 from .quality import Quality
+from .scoring import Scoring
 from .snapshot_format import Sparse, capture
 
 __all__ = ["RULES", "LabelAck", "Model", "ModelConfig", "SharedLog"]
 
 STATE_FORMAT = 2  # 2: the applied ids as `AppliedIds` arrays; 1 (still read): an id -> class map
-EXPLAIN_MAX = 50
 
 
 def _capture_all(
@@ -48,7 +48,7 @@ def _capture_all(
     return {key: capture(array) for key, array in arrays.items()}, applied.state()
 
 
-class Model(Labelling):
+class Model(Scoring, Labelling):
     """One model's live state. All methods run on the event loop; none blocks on I/O."""
 
     def __init__(
@@ -80,6 +80,7 @@ class Model(Labelling):
         self._waiters: dict[int, asyncio.Future[None]] = {}
         self.pending: dict[str, int] = {}
         self.scored = 0
+        self._gathered = None  # score requests waiting for this loop turn's batch
         self.duplicates = 0
         self.last_update = 0.0
         self.recent_mistakes: deque[dict[str, Any]] = deque(maxlen=RECENT_MISTAKES)
@@ -112,116 +113,6 @@ class Model(Labelling):
     @property
     def name(self) -> str:
         return self.config.name
-
-    # -- scoring ---------------------------------------------------------------------------
-
-    def score(
-        self, events: Sequence[Any], *, explain: int, now: float, bytes_hint: int = 0
-    ) -> list[dict[str, Any]]:
-        """Score a batch; remember events that carry an id for later labelling."""
-        ids, all_fields = self._parse_events(events, "events")
-        views = self.featurizer.transform_batch_views(all_fields, path="events")
-        labels, margins = self.learner.score_lists(*views)
-        size = max(64, bytes_hint // max(1, len(events)))
-        classes = self.config.classes
-        rows = self.learner.rows
-        results: list[dict[str, Any]] = []
-        remembered: list[tuple[str, Mapping[str, Any], int]] = []
-        for i, event_id in enumerate(ids):
-            label = labels[i]
-            if rows == 1:
-                result: dict[str, Any] = {
-                    "id": event_id,
-                    "label": classes[label],
-                    "margin": margins[i],
-                }
-            else:
-                row = margins[i * rows : (i + 1) * rows]
-                result = {
-                    "id": event_id,
-                    "label": classes[label],
-                    "margin": row[label],
-                    "margins": dict(zip(classes, row, strict=True)),
-                }
-            if explain > 0:
-                result["explain"] = self.explain(all_fields[i], explain, f"events[{i}].fields")
-            if event_id is not None:
-                remembered.append((event_id, all_fields[i], label))
-            results.append(result)
-        if remembered:
-            self.cache.put_many(remembered, now, size)
-        self.scored += len(results)
-        return results
-
-    async def share(self, events: Sequence[Any], results: list[dict[str, Any]], now: float) -> None:
-        """With a shared log, publish the scored events that carry an id, so that any replica
-        can take a label for them; without one, nothing to do."""
-        if self.shared is not None:
-            scored = [(r["id"], events[i]["fields"], r["label"])
-                      for i, r in enumerate(results) if r["id"] is not None]  # fmt: skip
-            if scored:
-                await self.shared.share(scored, now)
-
-    def explain(self, fields: Mapping[str, Any], k: int, path: str) -> list[dict[str, Any]]:
-        """Top-k tokens of one event by |weight x value|, with their text."""
-        row, tokens = self.featurizer.transform_with_tokens(fields, path=path)
-        by_index: dict[int, str] = {}
-        for token, index, _value in tokens:
-            by_index.setdefault(int(index), token)
-        items = self.learner.explain(row.indices, row.values, min(k, EXPLAIN_MAX))
-        return [
-            {
-                "token": by_index.get(int(index), f"#{int(index)}"),
-                "weight": float(weight),
-                "value": float(row.values[np.searchsorted(row.indices, index)]),
-                "contribution": float(contribution),
-            }
-            for index, weight, contribution in items
-        ]
-
-    def _parse_events(
-        self, events: Sequence[Any], path: str
-    ) -> tuple[list[str | None], list[Mapping[str, Any]]]:
-        ids: list[str | None] = []
-        all_fields: list[Mapping[str, Any]] = []
-        max_fields = self.max_fields
-        for i, event in enumerate(events):
-            # The common event, checked inline: a dict with a string id (or none) and a dict of
-            # fields within the limit. Anything else takes the checks below, which say why.
-            if type(event) is dict and len(event) <= 2:
-                event_id = event.get("id")
-                fields = event.get("fields")
-                if (
-                    type(fields) is dict
-                    and len(fields) <= max_fields
-                    and len(event) == (event_id is not None) + 1
-                    and (event_id is None or (type(event_id) is str and 0 < len(event_id) <= 256))
-                ):
-                    ids.append(event_id)
-                    all_fields.append(fields)
-                    continue
-            where = f"{path}[{i}]"
-            if type(event) is not dict and not isinstance(event, Mapping):
-                raise InvalidEvent("each event must be an object with 'fields'", path=where)
-            for key in event:
-                if key != "id" and key != "fields":
-                    extra = sorted((k for k in event if k not in ("id", "fields")), key=str)
-                    raise InvalidEvent(
-                        f"unknown key {extra[0]!r}; an event has 'id' and 'fields'", path=where
-                    )
-            ids.append(_event_id(event.get("id"), f"{where}.id"))
-            all_fields.append(self._fields(event.get("fields"), f"{where}.fields"))
-        return ids, all_fields
-
-    def _fields(self, fields: Any, path: str) -> Mapping[str, Any]:
-        if type(fields) is not dict and not isinstance(fields, Mapping):
-            raise InvalidEvent("'fields' must be an object of field name to value", path=path)
-        if len(fields) > self.max_fields:
-            raise InvalidEvent(
-                f"{len(fields)} fields is over the limit of {self.max_fields} per event",
-                path=path,
-            )
-        return fields
 
     # -- state -----------------------------------------------------------------------------
 
