@@ -11,7 +11,7 @@ from thresher.demo_traffic import DEMO_MODEL, ListingTraffic
 from thresher.errors import InvalidEvent
 from thresher.eventcache import EventCache
 from thresher.models import Model, ModelConfig
-from thresher.scoring import GATHER_EVENTS
+from thresher.scoring import GATHER_BATCH, GATHER_EVENTS
 
 
 class _NoLog:
@@ -174,10 +174,12 @@ async def test_requests_gathered_in_one_loop_turn_share_one_batch() -> None:
 
     # More than a batch's worth waits for the next loop turn; a big request is scored at once.
     batches.clear()
-    hundreds = [events[k : k + 100] for k in range(0, 200, 100)] * 6
-    answers = await asyncio.gather(*(model.gather(chunk, 0, 300) for chunk in hundreds))
-    assert batches == [[100] * 10, [100] * 2]
-    assert [len(a) for a in answers] == [100] * 12
+    per_batch = GATHER_BATCH // GATHER_EVENTS
+    chunks = [events[k : k + GATHER_EVENTS] for k in range(0, 5 * GATHER_EVENTS, GATHER_EVENTS)]
+    requests = (chunks * per_batch)[: per_batch + 3]
+    answers = await asyncio.gather(*(model.gather(chunk, 0, 300) for chunk in requests))
+    assert batches == [[GATHER_EVENTS] * per_batch, [GATHER_EVENTS] * 3]
+    assert [len(a) for a in answers] == [GATHER_EVENTS] * (per_batch + 3)
     big = await model.gather(events[: GATHER_EVENTS + 1], 0, 300)
     assert len(big) == GATHER_EVENTS + 1 and len(batches) == 3  # score_many of one request
 
