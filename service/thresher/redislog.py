@@ -19,6 +19,8 @@ model's incarnation token, so a model deleted and created again never meets its 
     thresher:{name}:T:snap:G:I  string  chunk I of snapshot generation G
     thresher:{name}:T:snapgen, :snaplock  generation counter; writer lock (SET NX PX)
     thresher:{name}:T:ids:next, :ids:next:prev  the id hashes a restore or rebuild leaves
+    thresher:{name}:T:rebuilds  hash    offset of a rebuild record no snapshot is past yet ->
+                                        "START GENERATION": what it reads (kept from trimming)
 
 One Lua script admits a batch atomically (`redisadmit`): a conflict refuses it whole,
 duplicates are left out, and every new record takes the next dense offset. Each replica's
@@ -52,7 +54,34 @@ SHARE_TIMEOUT = 1.0
 OUTBOX_MAX, RECALL_GRACE = 10_000, 0.02  # queued scored events; second look for a miss
 FAILURES = (RedisError, OSError)
 
+SWITCHING = "switching to a restore or rebuild appended on another replica"
+
 _log = logging.getLogger("thresher.redis")
+
+# KEYS: stream, snapshot index, pending rebuilds. ARGV: the offset to trim below. Rebuild
+# records that a snapshot is past are no longer pending; those that are pending keep the
+# records they relearn, from their start. Answers the offset it trimmed below (0: none).
+TRIM = """
+local below = tonumber(ARGV[1])
+local covered = -1
+local index = redis.call('HGETALL', KEYS[2])
+for i = 2, #index, 2 do
+  local ok, meta = pcall(cmsgpack.unpack, index[i])
+  if ok and type(meta) == 'table' and tonumber(meta['offset']) then
+    covered = math.max(covered, tonumber(meta['offset']))
+  end
+end
+local pending = redis.call('HGETALL', KEYS[3])
+for i = 1, #pending, 2 do
+  if tonumber(pending[i]) < covered then
+    redis.call('HDEL', KEYS[3], pending[i])
+  else
+    below = math.min(below, tonumber(string.match(pending[i + 1], '^(%d+)')))
+  end
+end
+if below > 0 then redis.call('XTRIM', KEYS[1], 'MINID', '0-' .. (below + 1)) end
+return below
+"""
 
 
 def _sid(offset: int) -> str:
@@ -99,6 +128,7 @@ class Keys:
         self.snaps, self.snapgen, self.lock = base + "snaps", base + "snapgen", base + "snaplock"
         self.freeze, self.excluded = base + "freeze", base + "excluded"
         self.staged, self.staged_previous = base + "ids:next", base + "ids:next:prev"
+        self.rebuilds = base + "rebuilds"
 
     def event(self, event_id: str) -> str:
         return f"{self.base}ev:{event_id}"
@@ -120,6 +150,8 @@ class RedisLog(LabelLog):
         self._wake = asyncio.Event()
         self._writer: asyncio.Task[None] | None = None
         self.events_dropped = 0  # scored events not shared: queue full or Redis down
+        self.resyncs = 0  # snapshots loaded in place of stream records no longer there
+        self.progressed = time.monotonic()  # when the follower last moved (`progress`)
 
     async def refresh(self) -> None:
         """Read the head and the first retained offset."""
@@ -145,6 +177,10 @@ class RedisLog(LabelLog):
         """Note that the stream holds at least ``head`` records."""
         self._head = max(self._head, head)
 
+    def progress(self) -> None:
+        """Note that the follower moved: applied records, or relearnt some for a rebuild."""
+        self.progressed = time.monotonic()
+
     async def append(self, payloads: list[bytes]) -> int:
         """Append records that need no exactly-once check; returns the first offset."""
         first, _, _ = await self.admit(payloads, [(None, "", "")] * len(payloads))
@@ -167,32 +203,47 @@ class RedisLog(LabelLog):
     async def entries(self, start: int, end: int) -> AsyncIterator[tuple[int, Any]]:
         """The raw stream entries (offset, fields) from ``start`` to ``end`` (exclusive)."""
         cursor = start
+        async for page in self.pages(start, end):
+            for _, data in page:
+                yield cursor, data
+                cursor += 1
+
+    async def pages(self, start: int, end: int, count: int = 2000) -> AsyncIterator[list[Any]]:
+        """The raw stream entries from ``start`` to ``end`` (exclusive), as XRANGE pages of
+        (entry id, fields); OffsetOutOfRange at the first offset no longer in the stream."""
+        cursor = start
         while cursor < end:
             try:
-                batch = await self.state.client.xrange(
-                    self.keys.stream, min=_sid(cursor), max=_sid(end - 1), count=2000
+                page = await self.state.client.xrange(
+                    self.keys.stream, min=_sid(cursor), max=_sid(end - 1), count=count
                 )
             except FAILURES as exc:
                 self.state.failed(exc)
                 raise unavailable(exc, "the stream could not be read") from exc
-            if not batch:
+            # Entry ids only rise: a page whose ends are len - 1 apart holds no gap.
+            if not page or _offset(page[0][0]) != cursor:
                 raise OffsetOutOfRange(f"offset {cursor} is no longer in the stream")
-            for entry_id, data in batch:
-                if _offset(entry_id) != cursor:
-                    raise OffsetOutOfRange(f"offset {cursor} is no longer in the stream")
-                yield cursor, data
-                cursor += 1
+            if _offset(page[-1][0]) != cursor + len(page) - 1:
+                raise OffsetOutOfRange(f"the stream has a gap after offset {cursor}")
+            yield page
+            cursor += len(page)
 
     async def trim(self, below: int) -> None:
-        """Drop entries below ``below`` (XTRIM MINID); the lowest kept is ``below``."""
+        """Drop entries below ``below`` (XTRIM MINID), but none a pending rebuild reads."""
         if below <= self._first:
             return
+        keys = [self.keys.stream, self.keys.snaps, self.keys.rebuilds]
         try:
-            await self.state.client.xtrim(self.keys.stream, minid=_sid(below), approximate=False)
+            kept = int(await self.state.client.eval(TRIM, len(keys), *keys, below))
         except FAILURES as exc:
             self.state.failed(exc)
             return  # a later snapshot trims again
-        self._first = below
+        if kept < below:
+            _log.info(
+                "model %s: stream kept from offset %d, not %d, for a rebuild not yet in a "
+                "snapshot", self.name, kept, below,
+            )  # fmt: skip
+        self._first = max(self._first, kept)
 
     async def close(self) -> None:
         """Stop the follower; the clients belong to the RedisState."""
@@ -305,6 +356,8 @@ class RedisLog(LabelLog):
                         ahead = (after, asyncio.ensure_future(self._read(after, None)))
                     for _, entries in reply or []:
                         await self._apply(model, entries, store)
+                    if not reply and self._head > model.offset:
+                        await self._behind(model, store)
                     delay = BACKOFF_MIN
                 except (*FAILURES, Unavailable) as exc:
                     self.state.failed(exc)
@@ -356,6 +409,21 @@ class RedisLog(LabelLog):
 
     async def _apply(self, model: Model, entries: list[Any], store: RedisSnapshots) -> None:
         """Apply the entries that continue the model's offset, YIELD_EVERY at a time."""
+        if all(b"d" in data for _, data in entries):
+            await self._apply_labels(model, entries, store)
+            return
+        # A control record ahead: until it is applied, this replica's applied ids are not the
+        # ones the append script now holds, so its labels get 503 rather than an answer from
+        # them (a rolled-back id called a duplicate). The requesting replica froze already.
+        # The refusal stays while the record cannot be applied.
+        switching = model.frozen in (None, SWITCHING)
+        if switching:
+            model.frozen = SWITCHING
+        await self._apply_labels(model, entries, store)
+        if switching and model.frozen == SWITCHING:
+            model.frozen = None
+
+    async def _apply_labels(self, model: Model, entries: list[Any], store: RedisSnapshots) -> None:
         await model.until_resumed()  # not while a snapshot is taking the weights
         # The usual case, a chunk at a time: the next records, all labels, so no entry by entry
         # checks; whatever else (a gap, a control record, a move while yielding) goes below.
@@ -366,6 +434,10 @@ class RedisLog(LabelLog):
                 return
             await asyncio.sleep(0)  # scoring and health checks between chunks of a catch-up
             await model.until_resumed()
+        await self._apply_entries(model, entries, store)
+
+    async def _apply_entries(self, model: Model, entries: list[Any], store: RedisSnapshots) -> None:
+        """Apply entries one by one from the model's offset: gaps, control records, labels."""
         payloads: list[bytes] = []
         for entry_id, data in entries:
             offset = _offset(entry_id)
@@ -395,15 +467,29 @@ class RedisLog(LabelLog):
             model.apply_payloads(model.offset, payloads)
         finally:
             self._head = max(self._head, model.offset)
+            if payloads:
+                self.progressed = time.monotonic()
+
+    async def _behind(self, model: Model, store: RedisSnapshots) -> None:
+        """Nothing to read, yet records to apply: they were trimmed, and none came after."""
+        await self.refresh()
+        if self._first > model.offset:
+            await self._resync(model, store, self._first)
 
     async def _resync(self, model: Model, store: RedisSnapshots, found: int) -> None:
-        """The stream was trimmed past this replica: jump to the newest snapshot."""
-        loaded = await asyncio.to_thread(store.load_newest)
-        if loaded is None or loaded[1].offset < found:
+        """The stream was trimmed past this replica: jump to the snapshot furthest along."""
+        loaded = await asyncio.to_thread(store.load_furthest, found)
+        if loaded is None:
             _log.error("model %s: stream starts at %d, past offset %d, and no snapshot covers "
-                       "the gap", self.name, found, model.offset)  # fmt: skip
+                       "the gap; waiting for one", self.name, found, model.offset)  # fmt: skip
             await asyncio.sleep(BACKOFF_MAX)
             return
+        await model.until_resumed()  # not while a snapshot is taking the weights
+        skipped = model.offset
         model.load_state(loaded[0])
-        _log.warning("model %s: lagged past the trimmed stream; loaded snapshot at offset %d",
-                     self.name, model.offset)  # fmt: skip
+        model.skip_to(model.offset)  # wakes what waits for the offsets it jumped over
+        self.saw(model.offset)
+        self.progress()
+        self.resyncs += 1
+        _log.warning("model %s: lagged past the trimmed stream at offset %d; loaded the snapshot "
+                     "at offset %d", self.name, skipped, model.offset)  # fmt: skip
