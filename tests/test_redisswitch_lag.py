@@ -35,7 +35,7 @@ from test_redis import (
 from test_redisswitch import flipped
 from thresher import records, redisswitch
 from thresher.http import MODELS, create_app
-from thresher.redislog import SWITCHING
+from thresher.redisfollow import SWITCHING
 from thresher.settings import Settings
 
 pytestmark = pytest.mark.redis

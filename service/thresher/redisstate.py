@@ -27,15 +27,8 @@ from redis.retry import Retry
 from . import snapshots
 from .errors import Conflict, InvalidConfig, NotFound, Unavailable
 from .redisadmit import APPEND
-from .redislog import (
-    BACKOFF_MAX,
-    BACKOFF_MIN,
-    BLOCK_MS,
-    FAILURES,
-    Keys,
-    RedisLog,
-    unavailable,
-)
+from .redisfollow import BACKOFF_MAX, BACKOFF_MIN, BLOCK_MS, FAILURES
+from .redislog import Keys, RedisLog, unavailable
 from .snapshots import CorruptSnapshot, SnapshotInfo
 
 DIRECTORY = "thresher:models"
