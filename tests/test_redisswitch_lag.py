@@ -70,6 +70,21 @@ async def replica(
         await app.close()
 
 
+@contextlib.asynccontextmanager
+async def two_replicas(
+    server: RedisServer, root: Path
+) -> AsyncIterator[tuple[aiohttp.ClientSession, list[str], list[web.Application]]]:
+    """Two replicas with model "lagged" created and adopted by both; a session to call them."""
+    async with (
+        replica(server, root / "a") as (a, a_app),
+        replica(server, root / "b") as (b, b_app),
+        aiohttp.ClientSession() as session,
+    ):
+        await ok(session, "POST", f"{a}/api/models", model_body("lagged"))
+        await converged(session, [a, b], "lagged", 0)
+        yield session, [a, b], [a_app, b_app]
+
+
 def first_offset(server: RedisServer, model: str) -> int:
     """The offset of the stream's first entry, where trimming left it (the head if none)."""
     with server.client() as client:
@@ -92,13 +107,7 @@ async def feed(session: aiohttp.ClientSession, url: str, items: list[dict[str, A
 async def test_a_replica_lagging_behind_a_rebuild_from_nothing_survives_a_trim(
     server: RedisServer, tmp_path: Path, covered: bool
 ) -> None:
-    async with (
-        replica(server, tmp_path / "a") as (a, _),
-        replica(server, tmp_path / "b") as (b, b_app),
-        aiohttp.ClientSession() as session,
-    ):
-        await ok(session, "POST", f"{a}/api/models", model_body("lagged"))
-        await converged(session, [a, b], "lagged", 0)
+    async with two_replicas(server, tmp_path) as (session, [a, b], [_, b_app]):
         await feed(session, a, labels("g", ROWS[:200]))
         await converged(session, [a, b], "lagged", 200)
 
@@ -149,13 +158,7 @@ async def test_a_replica_lagging_behind_a_rebuild_from_nothing_survives_a_trim(
 async def test_a_replica_not_yet_switched_refuses_labels_instead_of_answering_from_old_ids(
     server: RedisServer, tmp_path: Path
 ) -> None:
-    async with (
-        replica(server, tmp_path / "a") as (a, _),
-        replica(server, tmp_path / "b") as (b, b_app),
-        aiohttp.ClientSession() as session,
-    ):
-        await ok(session, "POST", f"{a}/api/models", model_body("lagged"))
-        await converged(session, [a, b], "lagged", 0)
+    async with two_replicas(server, tmp_path) as (session, [a, b], [_, b_app]):
         first, later = labels("r", ROWS[:100]), labels("r", ROWS[100:150], 100)
         await feed(session, a, first)
         snap = await ok(session, "POST", f"{a}/api/models/lagged/snapshots")
@@ -204,13 +207,7 @@ async def test_a_rebuild_longer_than_the_freeze_and_the_answer_timeout_completes
     monkeypatch.setattr(redisswitch, "REPLAY", 512)  # progress shows every 512 labels
     caplog.set_level(logging.INFO, logger="thresher.redis")
     n = 60_000
-    async with (
-        replica(server, tmp_path / "a") as (a, a_app),
-        replica(server, tmp_path / "b") as (b, _),
-        aiohttp.ClientSession() as session,
-    ):
-        await ok(session, "POST", f"{a}/api/models", model_body("lagged"))
-        await converged(session, [a, b], "lagged", 0)
+    async with two_replicas(server, tmp_path) as (session, [a, b], [a_app, _]):
         # Appended as label requests append them (rows made by the model's featurizer), but
         # straight to the stream: HTTP would only make the test slower.
         model = a_app[MODELS].models["lagged"]
