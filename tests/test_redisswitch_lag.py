@@ -155,8 +155,9 @@ async def test_a_replica_lagging_behind_a_rebuild_from_nothing_survives_a_trim(
             assert client.hlen(model_key(server, "lagged", "rebuilds")) == 0
 
 
+@pytest.mark.parametrize("behind", [False, True], ids=["record-read", "labels-before-it"])
 async def test_a_replica_not_yet_switched_refuses_labels_instead_of_answering_from_old_ids(
-    server: RedisServer, tmp_path: Path
+    server: RedisServer, tmp_path: Path, behind: bool
 ) -> None:
     async with two_replicas(server, tmp_path) as (session, [a, b], [_, b_app]):
         first, later = labels("r", ROWS[:100]), labels("r", ROWS[100:150], 100)
@@ -165,13 +166,21 @@ async def test_a_replica_not_yet_switched_refuses_labels_instead_of_answering_fr
         await feed(session, a, later)
         await converged(session, [a, b], "lagged", 150)
 
-        behind = b_app[MODELS].models["lagged"]
-        behind.hold()  # its follower reads the restore record but does not apply it yet
+        lagging = b_app[MODELS].models["lagged"]
+        lagging.hold()  # its follower stops before applying what it reads next
+        head = 151
         try:
+            if behind:  # it reads these and waits on them: the restore stays unread
+                await feed(session, a, labels("x", ROWS[150:250], 150))
+                await asyncio.sleep(0.3)
+                head = 251
             path = f"{a}/api/models/lagged/snapshots/{snap['generation']}/restore"
-            assert (await ok(session, "POST", path))["offset"] == 151
+            assert (await ok(session, "POST", path))["offset"] == head
+            if behind:
+                assert lagging.frozen is None
+                await lagging.log._refresh_head(lagging)  # as its follower does every 0.25 s
             deadline = time.monotonic() + 10
-            while behind.frozen != SWITCHING:
+            while lagging.frozen != SWITCHING:
                 assert time.monotonic() < deadline, "the follower never read the restore"
                 await asyncio.sleep(0.01)
             # Both ids were rolled back; the replica's own index still holds them, so it must
@@ -184,13 +193,13 @@ async def test_a_replica_not_yet_switched_refuses_labels_instead_of_answering_fr
                 assert status == 503 and "Retry-After" in headers, (status, problem)
                 assert "switching" in problem["detail"]
         finally:
-            behind.resume()
-        await converged(session, [a, b], "lagged", 151)
-        assert behind.frozen is None
+            lagging.resume()
+        await converged(session, [a, b], "lagged", head)
+        assert lagging.frozen is None
         body = {"labels": [flipped(later[0]), later[1]], "source": "fix", "wait": True}
         ack = await ok(session, "POST", f"{b}/api/models/lagged/labels", body)
         assert (ack["applied"], ack["duplicates"]) == (2, 0)
-        summaries = await converged(session, [a, b], "lagged", 153)
+        summaries = await converged(session, [a, b], "lagged", head + 2)
         assert summaries[0]["weights_digest"] == summaries[1]["weights_digest"]
 
 

@@ -148,7 +148,14 @@ class Following:
         return model.offset - start
 
     async def _refresh_head(self, model: Model) -> None:
-        seq = int(await self.state.client.get(self.keys.seq) or 0)
+        """Read the head, and the offset of the last control record: a replica behind one
+        refuses labels until it has applied it (see `_apply`), however far behind it is."""
+        raw, switched = await self.state.client.mget(self.keys.seq, self.keys.switched)
+        seq, switch = int(raw or 0), -1 if switched is None else int(switched)
+        if switch >= model.offset and model.frozen is None:
+            model.frozen = SWITCHING
+        elif switch < model.offset and model.frozen == SWITCHING:
+            model.frozen = None  # applied, or jumped past with a snapshot
         if seq < model.offset:
             _log.error(
                 "model %s: Redis holds %d records but %d were applied here; was Redis restored "

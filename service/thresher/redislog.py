@@ -21,6 +21,7 @@ model's incarnation token, so a model deleted and created again never meets its 
     thresher:{name}:T:ids:next, :ids:next:prev  the id hashes a restore or rebuild leaves
     thresher:{name}:T:rebuilds  hash    offset of a rebuild record no snapshot is past yet ->
                                         "START GENERATION": what it reads (kept from trimming)
+    thresher:{name}:T:switched  string  the offset of the last restore or rebuild record
 
 One Lua script admits a batch atomically (`redisadmit`): a conflict refuses it whole,
 duplicates are left out, and every new record takes the next dense offset. Each replica's
@@ -93,7 +94,7 @@ class Keys:
         self.snaps, self.snapgen, self.lock = base + "snaps", base + "snapgen", base + "snaplock"
         self.freeze, self.excluded = base + "freeze", base + "excluded"
         self.staged, self.staged_previous = base + "ids:next", base + "ids:next:prev"
-        self.rebuilds = base + "rebuilds"
+        self.rebuilds, self.switched = base + "rebuilds", base + "switched"
 
     def event(self, event_id: str) -> str:
         return f"{self.base}ev:{event_id}"

@@ -152,7 +152,7 @@ class RedisState:
             ]
             await client.unlink(keys.seq, keys.stream, keys.ids, keys.previous, keys.legacy,
                                 keys.snaps, keys.snapgen, keys.excluded, keys.freeze,
-                                keys.staged, keys.staged_previous, keys.rebuilds,
+                                keys.staged, keys.staged_previous, keys.rebuilds, keys.switched,
                                 *chunks)  # fmt: skip
             async for batch in _batches(client.scan_iter(match=keys.event("*"), count=1000)):
                 await client.unlink(*batch)

@@ -60,7 +60,7 @@ _log = logging.getLogger("thresher.redis")
 
 # KEYS: seq, stream, ids, live, freeze, staged ids, excluded sources, previous ids, staged
 # previous ids, legacy raw ids (dropped: the staged hashes hold every id the switch leaves),
-# pending rebuilds, snapshot index.
+# pending rebuilds, snapshot index, last control offset.
 # ARGV: token, freeze mark, control payload, lowest offset the stream must still hold (-1:
 # none, a restore), the generation the record names ('' for none), then the excluded sources.
 CONTROL = """
@@ -92,6 +92,7 @@ for i = 6, #ARGV do redis.call('SADD', KEYS[7], ARGV[i]) end
 local seq = redis.call('INCR', KEYS[1])
 redis.call('XADD', KEYS[2], '0-' .. seq, 'c', ARGV[3])
 if need >= 0 then redis.call('HSET', KEYS[11], seq - 1, need .. ' ' .. ARGV[5]) end
+redis.call('SET', KEYS[13], seq - 1)
 redis.call('DEL', KEYS[5])
 return {0, seq - 1}
 """
@@ -197,6 +198,7 @@ async def append(
                 keys.legacy,
                 keys.rebuilds,
                 keys.snaps,
+                keys.switched,
             ]
             payload = msgpack.packb(control, use_bin_type=True)
             generation = "" if control["generation"] is None else str(control["generation"])
