@@ -29,7 +29,7 @@ from thresher import records, redisswitch
 from thresher.appliedids import AppliedIds, IdTable
 from thresher.errors import LogUnavailable, NotFound
 from thresher.http import create_app
-from thresher.redislog import _labels_from
+from thresher.redisfollow import _labels_from
 from thresher.redisstate import RedisState
 from thresher.settings import Settings
 

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import asyncio
 import logging
+import time
 from collections.abc import Awaitable, Callable, Iterable
 from typing import TYPE_CHECKING, Any, cast
 
@@ -187,24 +188,46 @@ class Snapshotting:
 
         name = model.name
         store = cast("RedisSnapshots", self.stores[name])
+        log = cast("RedisLog", model.log)
         async with self._lock(name):
             await model.quiesce(what)  # this replica's labels get 503 until it has switched
             try:
                 offset = await redisswitch.append(
-                    cast("RedisLog", model.log), store, control, model.config.classes
+                    log,
+                    store,
+                    control,
+                    model.config.classes,
+                    row_key=model.row_key,
+                    bits=model.config.bits,
                 )
-                try:
-                    await model.wait_applied(offset, timeout=redisswitch.APPLY_TIMEOUT)
-                except Unavailable:
-                    raise Unavailable(
-                        f"{what} was appended to the stream of {name!r} at offset {offset} and "
-                        "every replica applies it there, but this one has not yet. Do not send it "
-                        f"again: watch GET /api/models/{name} until its offset passes {offset}",
-                        retry_after=5.0,
-                    ) from None
+                await self._until_switched(model, log, offset, what)
             finally:
                 model.frozen = None
             try:  # a restart then starts past the switch; another replica may be writing one
                 await self.snapshot(name)
             except Unavailable as exc:
                 logger.warning("model %s: no snapshot after %s: %s", name, what, exc)
+
+    async def _until_switched(self, model: Model, log: RedisLog, offset: int, what: str) -> None:
+        """Wait for this replica's follower to apply the record at ``offset``, for as long as
+        it keeps progressing (a rebuild of many labels takes a while); 503 once it stalls."""
+        from . import redisswitch
+
+        since = time.monotonic()
+        while True:
+            try:
+                await model.wait_applied(offset, timeout=redisswitch.APPLY_TIMEOUT)
+                return
+            except Unavailable:
+                if self.models.get(model.name) is not model:  # deleted or created again
+                    raise
+                idle = time.monotonic() - max(since, log.progressed)
+                if idle < redisswitch.APPLY_TIMEOUT:
+                    continue
+                raise Unavailable(
+                    f"{what} was appended to the stream of {model.name!r} at offset {offset} "
+                    "and every replica applies it there, but this one has not yet (its follower "
+                    f"made no progress for {idle:.1f} s). Do not send it again: watch "
+                    f"GET /api/models/{model.name} until its offset passes {offset}",
+                    retry_after=5.0,
+                ) from None

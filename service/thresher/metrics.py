@@ -204,6 +204,8 @@ class ModelCollector(Collector):
             fams.applied_offset.add_metric([name], model.offset)
             fams.head_offset.add_metric([name], head)
             fams.lag.add_metric([name], max(0, head - model.offset))
+            # Only a shared log skips ahead (to a snapshot, when it was trimmed past a replica).
+            fams.resyncs.add_metric([name], getattr(model.log, "resyncs", 0))
         yield from fams.all()
 
 
@@ -310,6 +312,12 @@ class _Families:
         )
         self.lag = GaugeMetricFamily(
             "thresher_replica_lag_labels", "Labels in the log not yet applied here.", labels=m
+        )
+
+        self.resyncs = CounterMetricFamily(
+            "thresher_replica_resyncs",
+            "Snapshots loaded in place of log records this replica needed that were trimmed.",
+            labels=m,
         )
 
     def all(self) -> Iterator[Metric]:

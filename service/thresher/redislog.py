@@ -19,12 +19,15 @@ model's incarnation token, so a model deleted and created again never meets its 
     thresher:{name}:T:snap:G:I  string  chunk I of snapshot generation G
     thresher:{name}:T:snapgen, :snaplock  generation counter; writer lock (SET NX PX)
     thresher:{name}:T:ids:next, :ids:next:prev  the id hashes a restore or rebuild leaves
+    thresher:{name}:T:rebuilds  hash    offset of a rebuild record no snapshot is past yet ->
+                                        "START GENERATION": what it reads (kept from trimming)
+    thresher:{name}:T:switched  string  the offset of the last restore or rebuild record
 
 One Lua script admits a batch atomically (`redisadmit`): a conflict refuses it whole,
 duplicates are left out, and every new record takes the next dense offset. Each replica's
 follower applies the stream in order, so replicas at one offset hold bit-identical weights.
-Restores and rebuilds are control records in the stream (`redisswitch`). The clients, the
-model directory and the snapshot store are in `redisstate`.
+Restores and rebuilds are control records in the stream (`redisswitch`). The follower is in
+`redisfollow`; the clients, the model directory and the snapshot store are in `redisstate`.
 """
 
 from __future__ import annotations
@@ -32,55 +35,47 @@ from __future__ import annotations
 import asyncio
 import logging
 import time
-from collections.abc import AsyncIterator, Callable
+from collections.abc import AsyncIterator
 from typing import TYPE_CHECKING, Any
 
 import msgpack
-from redis.exceptions import RedisError
 
-from .errors import LogUnavailable, Unavailable
+from .errors import LogUnavailable
 from .labellog import LabelLog, OffsetOutOfRange
+from .redisfollow import BLOCK_MS, FAILURES, Following, _offset, _sid
 
 if TYPE_CHECKING:
-    from .models import Model
-    from .redisstate import RedisSnapshots, RedisState
+    from .redisstate import RedisState
 
-READ_BATCH, BLOCK_MS, YIELD_EVERY = 1000, 1000, 256  # records applied as one batch per yield
-HEAD_EVERY, INDEX_EVERY = 0.25, 0.5  # seconds between the follower's head and index reads
-BACKOFF_MIN, BACKOFF_MAX, RETRY_AFTER = 0.05, 2.0, 2.0
-SHARE_TIMEOUT = 1.0
+RETRY_AFTER, SHARE_TIMEOUT = 2.0, 1.0
 OUTBOX_MAX, RECALL_GRACE = 10_000, 0.02  # queued scored events; second look for a miss
-FAILURES = (RedisError, OSError)
 
 _log = logging.getLogger("thresher.redis")
 
-
-def _sid(offset: int) -> str:
-    """The stream entry id of a log offset (entry ids start at 0-1)."""
-    return f"0-{offset + 1}"
-
-
-def _offset(entry_id: bytes) -> int:
-    return int(entry_id.split(b"-", 1)[1]) - 1
-
-
-def _labels_from(offset: int, entries: list[Any]) -> bool:
-    """Whether ``entries`` are exactly the records from ``offset`` on, every one a label.
-
-    Entry ids only rise, so a first and last entry ``len - 1`` apart leave no gap between.
-    """
-    return (
-        bool(entries)
-        and _offset(entries[0][0]) == offset
-        and _offset(entries[-1][0]) == offset + len(entries) - 1
-        and all(b"d" in data for _, data in entries)
-    )
-
-
-def _drop(task: asyncio.Task[Any]) -> None:
-    """Cancel a read nobody will use; its failure, if it failed, is of no interest."""
-    task.cancel()
-    task.add_done_callback(lambda done: done.cancelled() or done.exception())
+# KEYS: stream, snapshot index, pending rebuilds. ARGV: the offset to trim below. Rebuild
+# records that a snapshot is past are no longer pending; those that are pending keep the
+# records they relearn, from their start. Answers the offset it trimmed below (0: none).
+TRIM = """
+local below = tonumber(ARGV[1])
+local covered = -1
+local index = redis.call('HGETALL', KEYS[2])
+for i = 2, #index, 2 do
+  local ok, meta = pcall(cmsgpack.unpack, index[i])
+  if ok and type(meta) == 'table' and tonumber(meta['offset']) then
+    covered = math.max(covered, tonumber(meta['offset']))
+  end
+end
+local pending = redis.call('HGETALL', KEYS[3])
+for i = 1, #pending, 2 do
+  if tonumber(pending[i]) < covered then
+    redis.call('HDEL', KEYS[3], pending[i])
+  else
+    below = math.min(below, tonumber(string.match(pending[i + 1], '^(%d+)')))
+  end
+end
+if below > 0 then redis.call('XTRIM', KEYS[1], 'MINID', '0-' .. (below + 1)) end
+return below
+"""
 
 
 def unavailable(exc: BaseException, what: str) -> LogUnavailable:
@@ -99,6 +94,7 @@ class Keys:
         self.snaps, self.snapgen, self.lock = base + "snaps", base + "snapgen", base + "snaplock"
         self.freeze, self.excluded = base + "freeze", base + "excluded"
         self.staged, self.staged_previous = base + "ids:next", base + "ids:next:prev"
+        self.rebuilds, self.switched = base + "rebuilds", base + "switched"
 
     def event(self, event_id: str) -> str:
         return f"{self.base}ev:{event_id}"
@@ -107,7 +103,7 @@ class Keys:
         return f"{self.base}snap:{generation}:{i}"
 
 
-class RedisLog(LabelLog):
+class RedisLog(Following, LabelLog):
     """One model's label log as a Redis Stream, with its follower and shared event cache."""
 
     def __init__(self, state: RedisState, name: str, token: str) -> None:
@@ -120,6 +116,8 @@ class RedisLog(LabelLog):
         self._wake = asyncio.Event()
         self._writer: asyncio.Task[None] | None = None
         self.events_dropped = 0  # scored events not shared: queue full or Redis down
+        self.resyncs = 0  # snapshots loaded in place of stream records no longer there
+        self.progressed = time.monotonic()  # when the follower last moved (`progress`)
 
     async def refresh(self) -> None:
         """Read the head and the first retained offset."""
@@ -145,6 +143,10 @@ class RedisLog(LabelLog):
         """Note that the stream holds at least ``head`` records."""
         self._head = max(self._head, head)
 
+    def progress(self) -> None:
+        """Note that the follower moved: applied records, or relearnt some for a rebuild."""
+        self.progressed = time.monotonic()
+
     async def append(self, payloads: list[bytes]) -> int:
         """Append records that need no exactly-once check; returns the first offset."""
         first, _, _ = await self.admit(payloads, [(None, "", "")] * len(payloads))
@@ -167,32 +169,47 @@ class RedisLog(LabelLog):
     async def entries(self, start: int, end: int) -> AsyncIterator[tuple[int, Any]]:
         """The raw stream entries (offset, fields) from ``start`` to ``end`` (exclusive)."""
         cursor = start
+        async for page in self.pages(start, end):
+            for _, data in page:
+                yield cursor, data
+                cursor += 1
+
+    async def pages(self, start: int, end: int, count: int = 2000) -> AsyncIterator[list[Any]]:
+        """The raw stream entries from ``start`` to ``end`` (exclusive), as XRANGE pages of
+        (entry id, fields); OffsetOutOfRange at the first offset no longer in the stream."""
+        cursor = start
         while cursor < end:
             try:
-                batch = await self.state.client.xrange(
-                    self.keys.stream, min=_sid(cursor), max=_sid(end - 1), count=2000
+                page = await self.state.client.xrange(
+                    self.keys.stream, min=_sid(cursor), max=_sid(end - 1), count=count
                 )
             except FAILURES as exc:
                 self.state.failed(exc)
                 raise unavailable(exc, "the stream could not be read") from exc
-            if not batch:
+            # Entry ids only rise: a page whose ends are len - 1 apart holds no gap.
+            if not page or _offset(page[0][0]) != cursor:
                 raise OffsetOutOfRange(f"offset {cursor} is no longer in the stream")
-            for entry_id, data in batch:
-                if _offset(entry_id) != cursor:
-                    raise OffsetOutOfRange(f"offset {cursor} is no longer in the stream")
-                yield cursor, data
-                cursor += 1
+            if _offset(page[-1][0]) != cursor + len(page) - 1:
+                raise OffsetOutOfRange(f"the stream has a gap after offset {cursor}")
+            yield page
+            cursor += len(page)
 
     async def trim(self, below: int) -> None:
-        """Drop entries below ``below`` (XTRIM MINID); the lowest kept is ``below``."""
+        """Drop entries below ``below`` (XTRIM MINID), but none a pending rebuild reads."""
         if below <= self._first:
             return
+        keys = [self.keys.stream, self.keys.snaps, self.keys.rebuilds]
         try:
-            await self.state.client.xtrim(self.keys.stream, minid=_sid(below), approximate=False)
+            kept = int(await self.state.client.eval(TRIM, len(keys), *keys, below))
         except FAILURES as exc:
             self.state.failed(exc)
             return  # a later snapshot trims again
-        self._first = below
+        if kept < below:
+            _log.info(
+                "model %s: stream kept from offset %d, not %d, for a rebuild not yet in a "
+                "snapshot", self.name, kept, below,
+            )  # fmt: skip
+        self._first = max(self._first, kept)
 
     async def close(self) -> None:
         """Stop the follower; the clients belong to the RedisState."""
@@ -275,135 +292,3 @@ class RedisLog(LabelLog):
             if isinstance(fields, dict) and isinstance(served, str):
                 found[event_id] = (fields, served, float(at))
         return found
-
-    # -- the follower -----------------------------------------------------------------------
-
-    def follow(self, current: Callable[[], Model | None], store: RedisSnapshots) -> None:
-        """Start applying the stream to ``current()`` from its offset, in order, forever."""
-        self._task = asyncio.get_running_loop().create_task(self._follow(current, store))
-
-    async def _follow(self, current: Callable[[], Model | None], store: RedisSnapshots) -> None:
-        delay, head_due, index_due = BACKOFF_MIN, 0.0, time.monotonic() + INDEX_EVERY
-        # The next read, sent before a batch is applied so Redis works while this replica
-        # learns: (its first offset, its task); dropped if the batch moved the model elsewhere.
-        ahead: tuple[int, asyncio.Task[Any]] | None = None
-        try:
-            while not self._closing and (model := current()) is not None and model.log is self:
-                try:
-                    now = time.monotonic()
-                    if now >= head_due:
-                        await self._refresh_head(model)
-                        head_due = now + HEAD_EVERY
-                    if now >= index_due:
-                        store.adopt(await self.state.client.hgetall(store.keys.snaps))
-                        index_due = now + INDEX_EVERY
-                    sent, ahead = ahead, None
-                    reply = await self._read(model.offset, sent)
-                    self.state.up()
-                    if reply and reply[-1][1]:
-                        after = _offset(reply[-1][1][-1][0]) + 1
-                        ahead = (after, asyncio.ensure_future(self._read(after, None)))
-                    for _, entries in reply or []:
-                        await self._apply(model, entries, store)
-                    delay = BACKOFF_MIN
-                except (*FAILURES, Unavailable) as exc:
-                    self.state.failed(exc)
-                    await asyncio.sleep(delay)
-                    delay = min(delay * 2, BACKOFF_MAX)
-                except Exception:  # a bad record: stop here, visibly (the lag grows), and retry
-                    _log.exception("model %s: cannot apply offset %d", self.name, model.offset)
-                    await asyncio.sleep(BACKOFF_MAX)
-        finally:
-            if ahead is not None:
-                _drop(ahead[1])
-
-    async def _read(self, offset: int, sent: tuple[int, asyncio.Task[Any]] | None) -> Any:
-        """The XREAD reply from ``offset`` on: the one ``sent`` ahead when it starts there."""
-        if sent is not None:
-            if sent[0] == offset:
-                return await sent[1]
-            _drop(sent[1])
-        return await self.state.reader.xread(
-            {self.keys.stream: _sid(offset - 1)}, count=READ_BATCH, block=BLOCK_MS
-        )
-
-    async def catch_up(self, model: Model, store: RedisSnapshots) -> int:
-        """Apply the stream from the model's offset to the head as read now; the count."""
-        await self.refresh()
-        start, end = model.offset, self._head
-        if not self._first <= start <= end:
-            raise OffsetOutOfRange(f"offset {start} is outside the stream ({self._first}..{end})")
-        while model.offset < end:
-            before, run = model.offset, []
-            async for offset, data in self.entries(model.offset, end):
-                run.append((_sid(offset).encode(), data))
-                if len(run) == READ_BATCH:
-                    break
-            await self._apply(model, run, store)
-            if model.offset == before:
-                raise OffsetOutOfRange(f"offset {before} is no longer in the stream")
-        return model.offset - start
-
-    async def _refresh_head(self, model: Model) -> None:
-        seq = int(await self.state.client.get(self.keys.seq) or 0)
-        if seq < model.offset:
-            _log.error(
-                "model %s: Redis holds %d records but %d were applied here; was Redis restored "
-                "from an older copy? Acknowledged labels may be lost",
-                self.name, seq, model.offset,
-            )  # fmt: skip
-        self._head = seq
-
-    async def _apply(self, model: Model, entries: list[Any], store: RedisSnapshots) -> None:
-        """Apply the entries that continue the model's offset, YIELD_EVERY at a time."""
-        await model.until_resumed()  # not while a snapshot is taking the weights
-        # The usual case, a chunk at a time: the next records, all labels, so no entry by entry
-        # checks; whatever else (a gap, a control record, a move while yielding) goes below.
-        while _labels_from(model.offset, chunk := entries[:YIELD_EVERY]):
-            self._apply_run(model, [data[b"d"] for _, data in chunk])
-            entries = entries[YIELD_EVERY:]
-            if not entries:
-                return
-            await asyncio.sleep(0)  # scoring and health checks between chunks of a catch-up
-            await model.until_resumed()
-        payloads: list[bytes] = []
-        for entry_id, data in entries:
-            offset = _offset(entry_id)
-            if offset < model.offset + len(payloads):
-                continue
-            if offset > model.offset + len(payloads):
-                self._apply_run(model, payloads)
-                await self._resync(model, store, offset)
-                return
-            if b"d" not in data:  # a restore or rebuild: every replica switches state here
-                from . import redisswitch
-
-                self._apply_run(model, payloads)
-                payloads = []
-                await redisswitch.apply(self, model, offset, data[b"c"], store)
-                continue
-            payloads.append(data[b"d"])
-            if len(payloads) == YIELD_EVERY:
-                self._apply_run(model, payloads)
-                payloads = []
-                await asyncio.sleep(0)  # scoring and health checks between chunks of a catch-up
-                await model.until_resumed()
-        self._apply_run(model, payloads)
-
-    def _apply_run(self, model: Model, payloads: list[bytes]) -> None:
-        try:
-            model.apply_payloads(model.offset, payloads)
-        finally:
-            self._head = max(self._head, model.offset)
-
-    async def _resync(self, model: Model, store: RedisSnapshots, found: int) -> None:
-        """The stream was trimmed past this replica: jump to the newest snapshot."""
-        loaded = await asyncio.to_thread(store.load_newest)
-        if loaded is None or loaded[1].offset < found:
-            _log.error("model %s: stream starts at %d, past offset %d, and no snapshot covers "
-                       "the gap", self.name, found, model.offset)  # fmt: skip
-            await asyncio.sleep(BACKOFF_MAX)
-            return
-        model.load_state(loaded[0])
-        _log.warning("model %s: lagged past the trimmed stream; loaded snapshot at offset %d",
-                     self.name, model.offset)  # fmt: skip

@@ -27,15 +27,8 @@ from redis.retry import Retry
 from . import snapshots
 from .errors import Conflict, InvalidConfig, NotFound, Unavailable
 from .redisadmit import APPEND
-from .redislog import (
-    BACKOFF_MAX,
-    BACKOFF_MIN,
-    BLOCK_MS,
-    FAILURES,
-    Keys,
-    RedisLog,
-    unavailable,
-)
+from .redisfollow import BACKOFF_MAX, BACKOFF_MIN, BLOCK_MS, FAILURES
+from .redislog import Keys, RedisLog, unavailable
 from .snapshots import CorruptSnapshot, SnapshotInfo
 
 DIRECTORY = "thresher:models"
@@ -159,7 +152,8 @@ class RedisState:
             ]
             await client.unlink(keys.seq, keys.stream, keys.ids, keys.previous, keys.legacy,
                                 keys.snaps, keys.snapgen, keys.excluded, keys.freeze,
-                                keys.staged, keys.staged_previous, *chunks)  # fmt: skip
+                                keys.staged, keys.staged_previous, keys.rebuilds, keys.switched,
+                                *chunks)  # fmt: skip
             async for batch in _batches(client.scan_iter(match=keys.event("*"), count=1000)):
                 await client.unlink(*batch)
         except FAILURES as exc:
@@ -282,14 +276,40 @@ class RedisSnapshots:
         return self._index[generation][0]
 
     def _prune(self) -> None:
-        doomed = sorted(self._index, reverse=True)[self.keep :]
-        if not doomed:
+        """Drop all but the ``keep`` generations furthest along, and any a pending rebuild
+        starts from (`redisswitch`); the rebuild record cannot be appended past a prune that
+        has begun."""
+        for _ in range(3):
+            with self.state.sync.pipeline(transaction=True) as pipe:
+                try:
+                    pipe.watch(self.keys.rebuilds)
+                    pinned = self._pinned(pipe.hgetall(self.keys.rebuilds))
+                    ranked = sorted(
+                        self._index, key=lambda g: (self._index[g][0].offset, g), reverse=True
+                    )
+                    doomed = [g for g in ranked[self.keep :] if g not in pinned]
+                    if not doomed:
+                        return
+                    pipe.multi()
+                    pipe.hdel(self.keys.snaps, *map(str, doomed))
+                    for g in doomed:
+                        pipe.delete(*(self.keys.chunk(g, i) for i in range(self._index[g][1])))
+                    pipe.execute()
+                except redis.WatchError:
+                    continue
+            for g in doomed:
+                self._index.pop(g)
             return
-        pipe = self.state.sync.pipeline(transaction=True)
-        pipe.hdel(self.keys.snaps, *map(str, doomed))
-        for g in doomed:
-            pipe.delete(*(self.keys.chunk(g, i) for i in range(self._index.pop(g)[1])))
-        pipe.execute()
+
+    def _pinned(self, pending: dict[bytes, bytes]) -> set[int]:
+        """The generations that rebuild records no snapshot is past yet start from."""
+        covered = max((info.offset for info, _ in self._index.values()), default=-1)
+        pinned = set()
+        for offset, value in pending.items():
+            generation = value.decode().partition(" ")[2]
+            if int(offset) >= covered and generation:
+                pinned.add(int(generation))
+        return pinned
 
     def load(self, generation: int) -> dict[str, Any]:
         """The verified state of one generation."""
@@ -308,6 +328,24 @@ class RedisSnapshots:
         if meta.get("generation") != generation or meta.get("offset") != info.offset:
             raise CorruptSnapshot(f"snapshot generation {generation}: header does not match")
         return state
+
+    def load_furthest(self, offset: int) -> tuple[dict[str, Any], SnapshotInfo] | None:
+        """The verified generation furthest along, when it is at ``offset`` or past it.
+
+        Replicas at one offset hold one state, so any generation there will do; a later
+        generation can stand at an earlier offset (taken by a replica that lagged).
+        """
+        self.refresh()
+        ranked = sorted(self._index.values(), key=lambda e: (e[0].offset, e[0].generation))
+        for info, _ in reversed(ranked):
+            if info.offset < offset:
+                return None
+            try:
+                return self.load(info.generation), info
+            except (CorruptSnapshot, NotFound) as exc:
+                _log.error("snapshot generation %d of %s skipped: %s", info.generation,
+                           self.keys.base, exc)  # fmt: skip
+        return None
 
     def load_newest(
         self,
