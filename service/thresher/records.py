@@ -41,6 +41,11 @@ import numpy as np
 
 from .features import TOKEN_RULES
 
+try:  # the compiled fast path of `encode_many` (_records.c); the Python below is its reference
+    from . import _records
+except ImportError:  # pragma: no cover - a build without the C extension
+    _records = None  # type: ignore[assignment]
+
 VERSION = 2
 REQUIRED = ("id", "label", "fields", "source", "served", "time")
 KEY_BYTES = 8
@@ -95,6 +100,24 @@ def encode_many(
     """Payloads of records whose fields :func:`fields_packer` packed already (as ``packed``),
     ``recs[k]`` with row ``picks[k]`` of the CSR ``batch`` (indptr, indices, values) that the
     featurizer with fingerprint ``key`` made."""
+    if _records is not None:
+        made = _records.encode(
+            recs if type(recs) is list else list(recs), key, *batch,
+            picks if type(picks) is list else list(picks),
+        )  # fmt: skip
+        if made is not None:
+            return made  # type: ignore[no-any-return]
+    return encode_many_reference(recs, key, batch, picks)
+
+
+def encode_many_reference(
+    recs: Sequence[dict[str, Any]],
+    key: bytes,
+    batch: tuple[np.ndarray, np.ndarray, np.ndarray],
+    picks: Sequence[int],
+) -> list[bytes]:
+    """:func:`encode_many` in Python and numpy: the reference of its compiled path, which
+    hands every record it does not take here (this raises the exact error)."""
     indptr, indices, values = batch
     if indices.size and not 0 <= int(indices.min()) <= int(indices.max()) < 1 << 32:
         raise ValueError("row indices must be below 2**32 to be stored")
