@@ -140,6 +140,30 @@ def test_batches_equal_one_record_at_a_time(
     assert one.learner.updates > 0 and one.quality.mistakes > one.recent_mistakes.maxlen
 
 
+@pytest.mark.parametrize("excluded", [frozenset(), frozenset({"bot"})])
+def test_runs_given_their_own_featurized_batch_equal_one_record_at_a_time(
+    excluded: frozenset[str], caplog: pytest.LogCaptureFixture
+) -> None:
+    # A label request hands its one featurized batch over whole (row k is the k-th record's);
+    # with records it does not learn (an excluded source, a class the model lacks) the batch's
+    # rows are picked, as with rows given one by one.
+    recs = [r for r in _records(8000, multi=False) if type(r["fields"]["price"]) is float]
+    one, batched = _model("classic", ["fine", "fraud"]), _model("classic", ["fine", "fraud"])
+    one.exclude_sources = batched.exclude_sources = excluded
+    recs_one, recs_batched = copy.deepcopy(recs), copy.deepcopy(recs)
+    with caplog.at_level(logging.WARNING, logger="thresher.drift"):
+        for offset, record in enumerate(recs_one):
+            one.apply(offset, record)
+        alarms_one = _drift_messages(caplog)
+        for run in _runs(recs_batched):
+            batch = batched.featurizer.transform_batch([r["fields"] for r in run])
+            batched.apply_batch(batched.offset, run, batch)
+        alarms_batched = _drift_messages(caplog)
+    _assert_same(one, batched, recs_one, recs_batched)
+    assert alarms_batched == alarms_one
+    assert len(one.recent_mistakes) == one.recent_mistakes.maxlen
+
+
 def test_recent_mistakes_of_a_long_run_use_the_weights_they_were_made_with() -> None:
     # Late in training mistakes are sparse, so the last 50 of one long run lie far apart.
     recs = _records(12000, multi=False)

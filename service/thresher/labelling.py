@@ -99,10 +99,11 @@ class Labelling(Applying):
         kept: list[int] = []  # positions in ``built`` of the records to append
         fresh: dict[str, int] = {}
         duplicates = 0
-        pack = records.fields_packer()
+        pack = records.raw_fields_packer()
+        make = self._label_record
         try:
             for i, item in enumerate(labels):
-                made = self._label_record(item, i, source, now)
+                made = make(item, i, source, now)
                 if made is None:
                     duplicates += 1
                     continue
@@ -122,7 +123,7 @@ class Labelling(Applying):
                     fresh[event_id] = y
                 try:
                     record["packed"] = pack(fields)
-                except records.CorruptRecord:
+                except records.UNPACKABLE:
                     raise InvalidEvent(
                         "the label's fields cannot be stored in the label log: integers must "
                         "fit in 64 bits; send larger numbers as strings or floats",
@@ -135,18 +136,17 @@ class Labelling(Applying):
             self._featurize(built)
             raise
         batch = self._featurize(built)
-        rows = [(built[p][1], BatchRow(batch, p)) for p in kept]
-        spots = [built[p][0] for p in kept]
-        payloads = (
-            records.encode_many([r for r, _ in rows], self.row_key, batch, kept) if kept else []
-        )
         self.duplicates += duplicates
-        if not payloads:
+        if not kept:
             return LabelAck(0, duplicates, 0, self.log.head())
+        whole = len(kept) == len(built)  # no repeats: the batch's rows are the records'
+        recs = [record for _, record, _ in built] if whole else [built[p][1] for p in kept]
+        payloads = records.encode_many(recs, self.row_key, batch, kept)
         self.pending.update(fresh)
         try:
             if self.shared is not None:
-                ack = await self._admit(self.shared, payloads, rows, spots, duplicates, wait)
+                spots = [built[p][0] for p in kept]
+                ack = await self._admit(self.shared, payloads, recs, spots, duplicates, wait)
             else:
                 first = await self.log.append(payloads)
         except BaseException:
@@ -161,10 +161,11 @@ class Labelling(Applying):
         if self.apply_on_append:
             if first == self.offset and not self._ready and not self.holds:
                 # The usual case: the next records in the log, nothing else waiting to apply.
-                self.apply_batch(first, [record for record, _ in rows], [r for _, r in rows])
+                rows = batch if whole else [BatchRow(batch, p) for p in kept]
+                self.apply_batch(first, recs, rows)
             else:
-                for k, (record, row) in enumerate(rows):
-                    self._ready[first + k] = (record, row)
+                for k, (record, p) in enumerate(zip(recs, kept, strict=True)):
+                    self._ready[first + k] = (record, BatchRow(batch, p))
                 self._drain()
         if wait or self.apply_on_append:
             await self.wait_applied(last)
@@ -172,7 +173,7 @@ class Labelling(Applying):
             self.pending.pop(event_id, None)
         mistakes: int | None = None
         if self.apply_on_append or wait:
-            mistakes = sum(1 for record, _ in rows if record.get("_mistake"))
+            mistakes = len([record for record in recs if "_mistake" in record])
         return LabelAck(len(payloads), duplicates, mistakes, last + 1)
 
     def _featurize(self, built: list[tuple[int, dict[str, Any], Mapping[str, Any]]]) -> Batch:
@@ -208,13 +209,13 @@ class Labelling(Applying):
         self,
         shared: SharedLog,
         payloads: list[bytes],
-        rows: list[Any],
+        recs: list[dict[str, Any]],
         spots: list[int],
         duplicates: int,
         wait: bool,
     ) -> LabelAck:
         """Shared log: it decides duplicates and conflicts across replicas; a follower applies."""
-        keys = [(record["id"], record["label"], record["source"]) for record, _ in rows]
+        keys = [(record["id"], record["label"], record["source"]) for record in recs]
         first, repeated, conflict = await shared.admit(payloads, keys)
         if conflict is not None:
             k, existing = conflict

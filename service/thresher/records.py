@@ -63,17 +63,28 @@ def fingerprint(spec: Mapping[str, Any], *, bits: int, seed: int, signed: bool) 
     return hashlib.sha256(text.encode()).digest()[:KEY_BYTES]
 
 
+UNPACKABLE = (TypeError, ValueError, OverflowError)  # what packing fields can raise
+
+
+def raw_fields_packer() -> Callable[[Mapping[str, Any]], bytes]:
+    """:func:`fields_packer` without its error translation: it raises one of `UNPACKABLE`.
+
+    For a caller that packs in its own loop and reports the failure itself.
+    """
+    return msgpack.Packer(use_bin_type=True, strict_types=True).pack  # type: ignore[no-any-return]
+
+
 def fields_packer() -> Callable[[Mapping[str, Any]], bytes]:
     """A function packing fields maps as records store them; raises :class:`CorruptRecord`.
 
     Make one per run of records: it reuses one packer (creating one costs as much as a pack).
     """
-    pack = msgpack.Packer(use_bin_type=True, strict_types=True).pack
+    pack = raw_fields_packer()
 
     def packed(fields: Mapping[str, Any]) -> bytes:
         try:
             data: bytes = pack(fields)
-        except (TypeError, ValueError, OverflowError) as exc:
+        except UNPACKABLE as exc:
             raise CorruptRecord(f"label record fields cannot be encoded: {exc}") from exc
         return data
 
