@@ -231,7 +231,11 @@ class AppliedIds:
         self.shadowed = 0
 
     def get(self, event_id: str, default: int | None = None) -> int | None:
-        y = self.current.find(event_id)
+        # Called for every labelled id: the compiled find first, without IdTable.find's frame.
+        current = self.current
+        y = None if current._fast is None else current._fast.find(event_id)
+        if y is None:
+            y = current.find(event_id)
         if y < 0 and self.previous is not None:
             y = self.previous.find(event_id)
         return default if y < 0 else y

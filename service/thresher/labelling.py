@@ -62,6 +62,7 @@ class Labelling(Applying):
     frozen: str | None
     inflight: int
     holds: int
+    max_fields: int
     _idle: asyncio.Event
     _ready: dict[int, tuple[dict[str, Any], Any]]
     _fields: Callable[[Any, str], Mapping[str, Any]]  # Model's, shared with scoring
@@ -288,7 +289,8 @@ class Labelling(Applying):
                 else "a label without an id must carry the event's 'fields'",
                 path=f"labels[{i}].fields",
             )
-        fields = self._fields(fields, f"labels[{i}].fields")
+        if type(fields) is not dict or len(fields) > self.max_fields:  # else `_fields` passes it
+            fields = self._fields(fields, f"labels[{i}].fields")
         record = {"id": event_id, "label": label, "source": source, "served": served, "time": now}
         return record, fields if type(fields) is dict else dict(fields), y
 
