@@ -13,6 +13,6 @@ setup(
     ext_modules=[
         Extension(f"thresher.{name}", [f"service/thresher/{name}.c"], extra_compile_args=FLAGS,
                   libraries=LIBRARIES.get(name, []))  # fmt: skip
-        for name in ("_featurize", "_learner", "_appliedids", "_records")
+        for name in ("_featurize", "_learner", "_appliedids", "_records", "_quality")
     ]
 )

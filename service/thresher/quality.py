@@ -23,6 +23,11 @@ from .drift import DriftParams as DriftParams
 from .errors import InvalidConfig, InvalidInput
 from .quality_report import QualityReport
 
+try:  # the compiled fast path of `record_many` (_quality.c); the Python loop is its reference
+    from . import _quality
+except ImportError:  # pragma: no cover - a build without the C extension
+    _quality = None  # type: ignore[assignment]
+
 STATE_FORMAT = 1
 MAX_ALARMS_KEPT = 100
 MAX_SOURCES = 1000
@@ -116,6 +121,7 @@ class Quality(QualityReport):
         self.alarm_at: list[int] = []
         self.history: list[dict[str, Any]] = []
         self.history_stride = history_every
+        self.native = True  # False: `record_many` counts in its Python loop (the reference)
 
     # -- recording -------------------------------------------------------------------------
 
@@ -192,6 +198,59 @@ class Quality(QualityReport):
                 if self.record(truths[i], predicted[i], **kw):
                     return i
             return None
+        start, fired = 0, None
+        if _quality is not None and self.native:
+            start, fired = self._record_compiled(truths, predicted, sources, served, times)
+        if fired is not None or start == n:
+            return fired
+        if start:
+            fired = self._record_loop(
+                truths[start:], predicted[start:], sources[start:], served[start:], times[start:]
+            )
+            return None if fired is None else start + fired
+        return self._record_loop(truths, predicted, sources, served, times)
+
+    def _record_compiled(
+        self,
+        truths: Sequence[int],
+        predicted: Sequence[int],
+        sources: Sequence[str],
+        served: Sequence[int | None],
+        times: Sequence[float | None],
+    ) -> tuple[int, int | None]:
+        """`record_many` of checked labels through the compiled loop, which stops after every
+        alarm and history sample for Python to take them: (labels counted, alarm position)."""
+        n = len(truths)
+        lists = [x if type(x) is list else list(x) for x in (truths, predicted, served, sources)]
+        start = 0
+        while start < n:
+            made = _quality.record_run(self, *lists, start, OTHER_SOURCE, MAX_SOURCES)
+            if made is None:  # state or labels it does not take: the Python loop goes on
+                return start, None
+            stop, alarm = made
+            if stop == n:
+                break
+            if alarm:  # as the Python loop: count the alarm, then take a due sample
+                self.alarms += 1
+                self.alarm_at = [*self.alarm_at, self.labelled][-MAX_ALARMS_KEPT:]
+                self.ph = {"n": 0, "mean": 0.0, "m": 0.0, "m_min": 0.0, "statistic": 0.0}
+            if self.labelled % self.history_stride == 0:
+                self._sample(times[stop])
+            if alarm:
+                return stop + 1, stop
+            start = stop + 1
+        return n, None
+
+    def _record_loop(
+        self,
+        truths: Sequence[int],
+        predicted: Sequence[int],
+        sources: Sequence[str],
+        served: Sequence[int | None],
+        times: Sequence[float | None],
+    ) -> int | None:
+        """The counting loop of `record_many` over checked labels, in Python."""
+        n = len(truths)
         binary, confusion, served_confusion = self.binary, self.confusion, self.served_confusion
         ring, by_source = self.ring, self.by_source
         size = len(ring)
