@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 from sklearn.metrics import confusion_matrix, f1_score, precision_score, recall_score
 
-from thresher import quality
+from thresher import quality_runs
 from thresher.errors import InvalidConfig, InvalidInput
 from thresher.quality import MAX_ALARMS_KEPT, MAX_SOURCES, DriftParams, Quality
 
@@ -362,7 +362,7 @@ def test_record_many_counts_as_record_does_one_by_one(
     k: int, cuts: list[int], native: bool
 ) -> None:
     # record_many's compiled loop (_quality.c) and its Python loop, each against `record`.
-    if native and quality._quality is None:
+    if native and quality_runs._quality is None:
         if os.environ.get("CI"):
             pytest.fail("thresher._quality is not built; pip install the package")
         pytest.skip("thresher._quality is not built")
@@ -409,21 +409,21 @@ class _Declines:
 def test_the_python_loop_counts_what_the_compiled_one_declines(
     takes: int, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    if quality._quality is None:
+    if quality_runs._quality is None:
         pytest.skip("thresher._quality is not built")
     run = _run_of(9, 3000, 2)
     drift = DriftParams(threshold=8.0, min_samples=20)
     one = Quality(["a", "b"], windows=(50, 700), drift=drift, history_every=7, history_max=20)
     many = Quality.from_state(one.state())
-    compiled = quality._quality
-    monkeypatch.setattr(quality, "_quality", _Declines(takes, compiled))
+    compiled = quality_runs._quality
+    monkeypatch.setattr(quality_runs, "_quality", _Declines(takes, compiled))
     assert _at_once(many, run, [1500]) == _one_by_one(one, run)
     assert many.state() == one.state()
     # State of a type the compiled loop does not take (a tuple for the decayed pair).
     plain, odd = Quality(["a", "b"]), Quality(["a", "b"])
     odd.decayed = (0.0, 0.0)  # type: ignore[assignment]
     assert compiled.record_run(odd, [0], [1], [None], ["s"], 0, "(other)", 10) is None
-    monkeypatch.setattr(quality, "_quality", _Declines(10**9, compiled))
+    monkeypatch.setattr(quality_runs, "_quality", _Declines(10**9, compiled))
     for q in (plain, odd):
         assert _at_once(q, run, []) == _one_by_one(Quality(["a", "b"]), run)
     assert odd.counters_digest() == plain.counters_digest()

@@ -1,7 +1,7 @@
-/* thresher._quality: the compiled fast path of quality.Quality.record_many's counting loop.
+/* thresher._quality: the compiled fast path of the loop that counts a run (quality_runs.py).
  *
  * PURE: reads and writes only the Quality object it is handed. `record_run` counts labels
- * from `start` on exactly as the Python loop in quality.py does (the same integer counters,
+ * from `start` on exactly as the Python loop in quality_runs.py does (the same integer counters,
  * the same float64 operations in the same order, no fused multiply-adds), and stops right
  * after a label that raises a drift alarm or falls on a history sample: Python takes those
  * (the alarm's bookkeeping, `_sample`) and calls again. Every counter the Python loop keeps
@@ -286,7 +286,7 @@ static PyObject *py_record_run(PyObject *self, PyObject *args) {
         }
         pair_labelled += 1;
         pair_mistakes += mistake;
-        /* Page-Hinkley, as quality.py computes it. */
+        /* Page-Hinkley, as quality_runs.py computes it. */
         double x = mistake ? 1.0 : 0.0;
         ph_n += 1;
         mean += (x - mean) / (double)ph_n;
@@ -340,7 +340,8 @@ static PyMethodDef methods[] = {
 
 static struct PyModuleDef module = {
     PyModuleDef_HEAD_INIT, "thresher._quality",
-    "Compiled fast path of thresher.quality (see quality.py for the reference).", -1, methods,
+    "Compiled fast path of thresher.quality_runs (see quality_runs.py for the reference).", -1,
+    methods,
 };
 
 PyMODINIT_FUNC PyInit__quality(void) { return PyModule_Create(&module); }
