@@ -357,7 +357,9 @@ def _at_once(q: Quality, run: dict[str, list[Any]], cuts: list[int]) -> list[int
 
 
 @pytest.mark.parametrize("native", [True, False])
-@pytest.mark.parametrize(("k", "cuts"), [(2, []), (2, [1, 2, 700, 2500]), (3, [999, 1000])])
+@pytest.mark.parametrize(
+    ("k", "cuts"), [(2, []), (2, [1, 2, 700, 2500]), (3, [999, 1000]), (64, [5]), (65, [5])]
+)
 def test_record_many_counts_as_record_does_one_by_one(
     k: int, cuts: list[int], native: bool
 ) -> None:

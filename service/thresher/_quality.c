@@ -6,8 +6,10 @@
  * after a label that raises a drift alarm or falls on a history sample: Python takes those
  * (the alarm's bookkeeping, `_sample`) and calls again. Every counter the Python loop keeps
  * in locals is written back before it returns. Anything not handled here -- a label that is
- * not a plain class index, a source that is not a str, state of unexpected types -- answers
- * None before anything is counted, and the reference loop counts it.
+ * not a plain class index, a source that is not a str, state of unexpected types or shapes,
+ * more than MAX_CLASSES classes -- answers None before anything is counted, and the
+ * reference loop counts it. Confusion counts are read only where a run adds to them (the
+ * state loader makes them ints; anything else there is a TypeError).
  */
 #define PY_SSIZE_T_CLEAN
 #include <Python.h>
@@ -16,6 +18,7 @@
 #include <stdlib.h>
 
 #define MAX_WINDOWS 16
+#define MAX_CLASSES 64 /* past this the Python loop, which touches only the cells it counts */
 
 static PyObject *not_handled(void) { Py_RETURN_NONE; }
 
@@ -56,6 +59,37 @@ static int read_grid(PyObject *grid, Py_ssize_t rows, Py_ssize_t cols, long long
             if (!as_ll(PyList_GET_ITEM(row, c), &out[r * cols + c])) return 0;
     }
     return 1;
+}
+
+/* Whether `grid` is a list of `rows` lists of `cols` items (their types are checked as they
+ * are added to). */
+static int grid_shaped(PyObject *grid, Py_ssize_t rows, Py_ssize_t cols) {
+    if (grid == NULL || !PyList_CheckExact(grid) || PyList_GET_SIZE(grid) != rows) return 0;
+    for (Py_ssize_t r = 0; r < rows; r++) {
+        PyObject *row = PyList_GET_ITEM(grid, r);
+        if (!PyList_CheckExact(row) || PyList_GET_SIZE(row) != cols) return 0;
+    }
+    return 1;
+}
+
+/* Add the nonzero `deltas` (row-major) to a grid's ints; only the cells counted are touched,
+ * so a run costs the same for any number of classes. */
+static int add_grid(PyObject *grid, Py_ssize_t rows, Py_ssize_t cols, const long long *deltas) {
+    for (Py_ssize_t r = 0; r < rows; r++) {
+        PyObject *row = PyList_GET_ITEM(grid, r);
+        for (Py_ssize_t c = 0; c < cols; c++) {
+            long long delta = deltas[r * cols + c], v;
+            if (delta == 0) continue;
+            if (!as_ll(PyList_GET_ITEM(row, c), &v)) {
+                PyErr_SetString(PyExc_TypeError, "confusion counts must be ints");
+                return -1;
+            }
+            PyObject *o = PyLong_FromLongLong(v + delta);
+            if (o == NULL) return -1;
+            PyList_SetItem(row, c, o); /* steals o */
+        }
+    }
+    return 0;
 }
 
 static int write_grid(PyObject *grid, Py_ssize_t rows, Py_ssize_t cols, const long long *in) {
@@ -161,7 +195,7 @@ static PyObject *py_record_run(PyObject *self, PyObject *args) {
     if (!attrs_take(q, &a)) goto fallback;
 
     long long k, labelled, mistakes, served_labelled, served_mistakes, stride;
-    if (!as_ll(a.k, &k) || k < 2 || k > 4096 || !PyBool_Check(a.binary) ||
+    if (!as_ll(a.k, &k) || k < 2 || k > MAX_CLASSES || !PyBool_Check(a.binary) ||
         !as_ll(a.labelled, &labelled) || !as_ll(a.mistakes, &mistakes) ||
         !as_ll(a.served_labelled, &served_labelled) ||
         !as_ll(a.served_mistakes, &served_mistakes) || !as_ll(a.stride, &stride) || stride < 1)
@@ -181,13 +215,14 @@ static PyObject *py_record_run(PyObject *self, PyObject *args) {
     long long size = (long long)PyByteArray_GET_SIZE(a.ring);
     if (size < 1) goto fallback;
 
-    grid = malloc(sizeof(long long) * (size_t)(2 * k * k + nwin * codes));
+    /* The confusion matrices as the counts this call adds, the window counts whole. */
+    grid = calloc((size_t)(2 * k * k + nwin * codes), sizeof(long long));
     if (grid == NULL) {
         PyErr_NoMemory();
         goto done;
     }
     long long *conf = grid, *sconf = grid + k * k, *counts = grid + 2 * k * k;
-    if (!read_grid(a.confusion, k, k, conf) || !read_grid(a.served_confusion, k, k, sconf) ||
+    if (!grid_shaped(a.confusion, k, k) || !grid_shaped(a.served_confusion, k, k) ||
         !read_grid(a.window_counts, nwin, codes, counts))
         goto fallback;
 
@@ -299,8 +334,7 @@ static PyObject *py_record_run(PyObject *self, PyObject *args) {
     if (pair != NULL && add_pair(pair, pair_labelled, pair_mistakes) < 0) goto done;
 
     /* Write back what the Python loop keeps in locals. */
-    if (write_grid(a.confusion, k, k, conf) < 0 ||
-        write_grid(a.served_confusion, k, k, sconf) < 0 ||
+    if (add_grid(a.confusion, k, k, conf) < 0 || add_grid(a.served_confusion, k, k, sconf) < 0 ||
         write_grid(a.window_counts, nwin, codes, counts) < 0)
         goto done;
     if (set_ll(q, "labelled", labelled) < 0 || set_ll(q, "mistakes", mistakes) < 0 ||
