@@ -127,8 +127,8 @@ def encode_many_reference(
     batch: tuple[np.ndarray, np.ndarray, np.ndarray],
     picks: Sequence[int],
 ) -> list[bytes]:
-    """:func:`encode_many` in Python and numpy: the reference of its compiled path, which
-    hands every record it does not take here (this raises the exact error)."""
+    """:func:`encode_many` in Python and numpy, the reference of its compiled path: that path
+    hands over every call it does not take, and this encodes it or raises the exact error."""
     indptr, indices, values = batch
     if indices.size and not 0 <= int(indices.min()) <= int(indices.max()) < 1 << 32:
         raise ValueError("row indices must be below 2**32 to be stored")

@@ -67,8 +67,8 @@ def frame_records(payloads: list[bytes]) -> bytes:
 
 
 def frame_records_reference(payloads: list[bytes]) -> bytes:
-    """:func:`frame_records` in Python: the reference of its compiled path, which hands back
-    anything it does not take (this raises the exact error)."""
+    """:func:`frame_records` in Python, the reference of its compiled path: that path hands
+    over every call it does not take, and this frames it or raises the exact error."""
     if not payloads:
         raise ValueError("append needs at least one payload")
     parts: list[bytes] = []
