@@ -6,13 +6,9 @@ from setuptools import Extension, setup
 FLAGS = ["-O2", "-std=c11", "-ffp-contract=off", "-Wall", "-Wextra", "-Wno-unused-parameter",
          "-Wno-missing-field-initializers", "-Wno-cast-function-type"]  # fmt: skip
 
-# _records frames log payloads with zlib's CRC-32, the one segments.py checks them with.
-LIBRARIES = {"_records": ["z"]}
-
 setup(
     ext_modules=[
-        Extension(f"thresher.{name}", [f"service/thresher/{name}.c"], extra_compile_args=FLAGS,
-                  libraries=LIBRARIES.get(name, []))  # fmt: skip
+        Extension(f"thresher.{name}", [f"service/thresher/{name}.c"], extra_compile_args=FLAGS)
         for name in ("_featurize", "_learner", "_appliedids", "_records", "_quality")
     ]
 )

@@ -221,20 +221,25 @@ def test_a_version_2_payload_as_the_format_documents_it() -> None:
 def test_frames_as_the_reference() -> None:
     recs, batch = _demo(50, seed=8)
     payloads = [*_same(recs, KEY, batch, list(range(50))), b"\x00", b"z" * 70000]
-    framed = frame(payloads, segments.MAX_RECORD_BYTES)
+    framed = frame(payloads, zlib.crc32, segments.MAX_RECORD_BYTES)
     assert framed == segments.frame_records_reference(payloads)
     assert framed == segments.frame_records(payloads)
     first = payloads[0]
     assert framed[:8] == struct.pack("<II", len(first), zlib.crc32(first))
     parsed, end, reason = segments.parse_records(framed, 0, len(payloads), 0, [], 0)
     assert (parsed, end, reason) == (payloads, len(framed), None)
+    # The CRC is the one the function handed in answers; its errors come through.
+    assert frame([b"ab"], lambda p: 0xDEADBEEF, 16) == b"\x02\0\0\0\xef\xbe\xad\xdeab"
+    assert frame([b"ab"], lambda p: 1 << 32, 16) is None
+    with pytest.raises(ZeroDivisionError):
+        frame([b"ab"], lambda p: 1 // 0, 16)
 
 
 @pytest.mark.parametrize(
     "payloads", [[], [b""], [b"ok", bytearray(b"no")], [b"ok", "text"], [b"x" * 17]]
 )
 def test_payloads_it_does_not_take_go_to_the_reference(payloads: list[Any]) -> None:
-    assert frame(payloads, 16) is None
+    assert frame(payloads, zlib.crc32, 16) is None
     if payloads == [b"x" * 17]:
         return  # over the limit passed here; the real limit is 16 MiB
     with pytest.raises(ValueError):

@@ -5,7 +5,8 @@
  * byte as msgpack-python's Packer(use_bin_type=True) writes it in the reference: the shortest
  * str and bin headers, the time as a big-endian float64, the row as little-endian uint32
  * indices and float32 values. `frame` writes each payload after its little-endian u32 length
- * and u32 CRC-32 (zlib's), as segments.py documents. Anything not handled here -- a record
+ * and u32 CRC-32 (computed by the function it is handed, zlib.crc32, so that nothing is
+ * linked beyond Python), as segments.py documents. Anything not handled here -- a record
  * that is not a plain dict of exactly typed values, a row index outside uint32, a payload
  * that is not bytes or has an impossible length, arrays of another dtype -- answers None and
  * the Python reference takes it, which then encodes it or raises the exact error.
@@ -16,7 +17,6 @@
 #include <math.h>
 #include <stdint.h>
 #include <string.h>
-#include <zlib.h>
 
 #if defined(__BYTE_ORDER__) && __BYTE_ORDER__ == __ORDER_LITTLE_ENDIAN__
 #define ROWS_AS_STORED 1 /* host order is the stored order: rows are copied as they are */
@@ -251,34 +251,51 @@ done:
     return out;
 }
 
-/* frame(payloads, max_bytes) -> the payloads framed in one bytes, or None. */
+/* frame(payloads, crc32, max_bytes) -> the payloads framed in one bytes, or None. `crc32`
+ * is called with each payload and must answer its CRC-32 as an int. */
 static PyObject *py_frame(PyObject *self, PyObject *args) {
-    PyObject *payloads;
+    PyObject *payloads, *crc32;
     Py_ssize_t most;
-    if (!PyArg_ParseTuple(args, "On", &payloads, &most)) return NULL;
+    if (!PyArg_ParseTuple(args, "OOn", &payloads, &crc32, &most)) return NULL;
     if (!PyList_CheckExact(payloads) || PyList_GET_SIZE(payloads) == 0 || most > 0xffffffffLL)
         return not_handled();
-    Py_ssize_t n = PyList_GET_SIZE(payloads), total = 0;
+    /* The payloads held in a tuple: whatever crc32 does, they stay the ones sized here. */
+    PyObject *held = PyList_AsTuple(payloads);
+    if (held == NULL) return NULL;
+    Py_ssize_t n = PyTuple_GET_SIZE(held), total = 0;
     for (Py_ssize_t k = 0; k < n; k++) {
-        PyObject *p = PyList_GET_ITEM(payloads, k);
-        if (!PyBytes_CheckExact(p) || PyBytes_GET_SIZE(p) == 0 || PyBytes_GET_SIZE(p) > most)
+        PyObject *p = PyTuple_GET_ITEM(held, k);
+        if (!PyBytes_CheckExact(p) || PyBytes_GET_SIZE(p) == 0 || PyBytes_GET_SIZE(p) > most ||
+            total > PY_SSIZE_T_MAX - 8 - PyBytes_GET_SIZE(p)) {
+            Py_DECREF(held);
             return not_handled();
-        if (total > PY_SSIZE_T_MAX - 8 - PyBytes_GET_SIZE(p)) return not_handled();
+        }
         total += 8 + PyBytes_GET_SIZE(p);
     }
     PyObject *out = PyBytes_FromStringAndSize(NULL, total);
-    if (out == NULL) return NULL;
+    if (out == NULL) {
+        Py_DECREF(held);
+        return NULL;
+    }
     unsigned char *w = (unsigned char *)PyBytes_AS_STRING(out);
     for (Py_ssize_t k = 0; k < n; k++) {
-        PyObject *p = PyList_GET_ITEM(payloads, k);
-        const unsigned char *data = (const unsigned char *)PyBytes_AS_STRING(p);
-        uInt size = (uInt)PyBytes_GET_SIZE(p);
-        uint32_t crc = (uint32_t)crc32(0L, data, size);
-        for (int b = 0; b < 4; b++) *w++ = (unsigned char)(size >> (8 * b));
+        PyObject *p = PyTuple_GET_ITEM(held, k);
+        PyObject *made = PyObject_CallOneArg(crc32, p);
+        unsigned long crc = made == NULL ? 0 : PyLong_AsUnsignedLong(made);
+        Py_XDECREF(made);
+        if (made == NULL || (crc == (unsigned long)-1 && PyErr_Occurred()) || crc > 0xffffffffUL) {
+            Py_DECREF(held);
+            Py_DECREF(out);
+            if (PyErr_Occurred()) return NULL;
+            return not_handled();
+        }
+        Py_ssize_t size = PyBytes_GET_SIZE(p);
+        for (int b = 0; b < 4; b++) *w++ = (unsigned char)((uint64_t)size >> (8 * b));
         for (int b = 0; b < 4; b++) *w++ = (unsigned char)(crc >> (8 * b));
-        memcpy(w, data, size);
+        memcpy(w, PyBytes_AS_STRING(p), (size_t)size);
         w += size;
     }
+    Py_DECREF(held);
     return out;
 }
 

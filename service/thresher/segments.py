@@ -60,7 +60,7 @@ def segment_path(directory: Path, base: int) -> Path:
 def frame_records(payloads: list[bytes]) -> bytes:
     """The records as they are appended: each payload after its length and CRC-32."""
     if _records is not None:
-        made = _records.frame(payloads, MAX_RECORD_BYTES)
+        made = _records.frame(payloads, zlib.crc32, MAX_RECORD_BYTES)
         if made is not None:
             return made  # type: ignore[no-any-return]
     return frame_records_reference(payloads)
