@@ -9,6 +9,6 @@ FLAGS = ["-O2", "-std=c11", "-ffp-contract=off", "-Wall", "-Wextra", "-Wno-unuse
 setup(
     ext_modules=[
         Extension(f"thresher.{name}", [f"service/thresher/{name}.c"], extra_compile_args=FLAGS)
-        for name in ("_featurize", "_learner", "_appliedids")
+        for name in ("_featurize", "_learner", "_appliedids", "_records", "_quality")
     ]
 )

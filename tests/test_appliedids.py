@@ -153,6 +153,45 @@ def test_a_snapshot_then_the_rest_equals_one_run(
     assert _arrays(resumed) == _arrays(whole) and resumed == whole
 
 
+def _state_arrays(ids: AppliedIds) -> list[tuple[int, str, bytes, bytes, bytes]]:
+    return [
+        (t["count"], t["cls"].dtype.str, t["cls"].tobytes(), t["h1"].tobytes(), t["h2"].tobytes())
+        for t in ids.state()["tables"]
+    ]
+
+
+@settings(max_examples=60, deadline=None)
+@given(OPS, st.sampled_from([None, 3, 40]), st.sampled_from([0, 250, 300]))
+def test_the_compiled_state_gather_leaves_the_reference_arrays(
+    ops: list[tuple[str, int]], window: int | None, shift: int
+) -> None:
+    # Class indices past a byte keep int32 ``cls``: the compiled gather hands those back.
+    ops = [(event_id, y + shift) for event_id, y in ops]
+    native, reference = AppliedIds(window), AppliedIds(window, native=False)
+    native.update(ops)
+    reference.update(ops)
+    assert _state_arrays(native) == _state_arrays(reference)
+    assert all(t["cls"].dtype == (np.uint8 if shift < 255 else np.int32)
+               for t in native.state()["tables"] if t["count"])  # fmt: skip
+
+
+def test_the_state_gather_refuses_outputs_that_do_not_fit() -> None:
+    ids = AppliedIds()
+    ids.update((f"id-{i}", 1) for i in range(100))
+    table = ids.current
+    args = (table.h1, table.h2, table.cls)
+    room = np.empty(table.capacity, np.uint8)
+    fits = [np.empty(100, np.uint64), np.empty(100, np.uint64), room]
+    assert appliedids._appliedids.gather(*args, *fits) is True
+    assert np.array_equal(fits[2], table.cls.astype(np.uint8))
+    for short in (99, 101):  # a count that does not match the used slots
+        wrong = [np.empty(short, np.uint64), np.empty(short, np.uint64), room]
+        assert appliedids._appliedids.gather(*args, *wrong) is None
+    other = [np.empty(100, np.int64), np.empty(100, np.uint64), room]
+    assert appliedids._appliedids.gather(*args, *other) is None
+    assert appliedids._appliedids.gather(*args, *fits[:2], room[:-1]) is None
+
+
 def test_a_snapshot_under_another_window_keeps_every_id() -> None:
     ids = AppliedIds()
     ids.update((f"id-{i}", i % 2) for i in range(50))

@@ -104,6 +104,31 @@ def _assert_same(one: Model, batched: Model, recs_one: list[Any], recs_batched: 
     assert list(batched.recent_mistakes) == list(one.recent_mistakes)
 
 
+def _apply_both(
+    one: Model,
+    batched: Model,
+    recs: list[dict[str, Any]],
+    caplog: pytest.LogCaptureFixture,
+    *,
+    own_batch: bool = False,
+) -> None:
+    """Apply copies of ``recs`` to ``one`` record by record and to ``batched`` in runs (each
+    with its own featurized batch when ``own_batch``); both must end the same, alarms too."""
+    recs_one, recs_batched = copy.deepcopy(recs), copy.deepcopy(recs)
+    with caplog.at_level(logging.WARNING, logger="thresher.drift"):
+        for offset, record in enumerate(recs_one):
+            one.apply(offset, record)
+        alarms_one = _drift_messages(caplog)
+        for run in _runs(recs_batched):
+            rows = None
+            if own_batch:
+                rows = batched.featurizer.transform_batch([r["fields"] for r in run])
+            batched.apply_batch(batched.offset, run, rows)
+        alarms_batched = _drift_messages(caplog)
+    _assert_same(one, batched, recs_one, recs_batched)
+    assert alarms_batched == alarms_one
+
+
 @pytest.mark.parametrize(
     ("rule", "classes"),
     [
@@ -121,23 +146,28 @@ def test_batches_equal_one_record_at_a_time(
 ) -> None:
     recs = _records(8000, multi=len(classes) > 2)
     one, batched = _model(rule, classes), _model(rule, classes)
-    recs_one, recs_batched = copy.deepcopy(recs), copy.deepcopy(recs)
-    with caplog.at_level(logging.WARNING, logger="thresher.drift"):
-        for offset, record in enumerate(recs_one):
-            one.apply(offset, record)
-        alarms_one = _drift_messages(caplog)
-        for run in _runs(recs_batched):
-            batched.apply_batch(batched.offset, run)
-        alarms_batched = _drift_messages(caplog)
-    _assert_same(one, batched, recs_one, recs_batched)
+    _apply_both(one, batched, recs, caplog)
     assert batched.offset == len(recs)
-    assert alarms_batched == alarms_one
     # The comparison reaches what it is meant to: a full list of explained mistakes, skipped
     # sources and foreign records, and mistakes made by weights a batch had moved past.
     assert len(one.recent_mistakes) == one.recent_mistakes.maxlen
     assert all(entry["top"] for entry in one.recent_mistakes)
     assert "bot" not in one.quality.by_source and one.quality.labelled < len(recs) * 3 // 4
     assert one.learner.updates > 0 and one.quality.mistakes > one.recent_mistakes.maxlen
+
+
+@pytest.mark.parametrize("excluded", [frozenset(), frozenset({"bot"})])
+def test_runs_given_their_own_featurized_batch_equal_one_record_at_a_time(
+    excluded: frozenset[str], caplog: pytest.LogCaptureFixture
+) -> None:
+    # A label request hands its one featurized batch over whole (row k is the k-th record's);
+    # with records it does not learn (an excluded source, a class the model lacks) the batch's
+    # rows are picked, as with rows given one by one.
+    recs = [r for r in _records(8000, multi=False) if type(r["fields"]["price"]) is float]
+    one, batched = _model("classic", ["fine", "fraud"]), _model("classic", ["fine", "fraud"])
+    one.exclude_sources = batched.exclude_sources = excluded
+    _apply_both(one, batched, recs, caplog, own_batch=True)
+    assert len(one.recent_mistakes) == one.recent_mistakes.maxlen
 
 
 def test_recent_mistakes_of_a_long_run_use_the_weights_they_were_made_with() -> None:

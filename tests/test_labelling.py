@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from pathlib import Path
+from types import MappingProxyType
 from typing import Any
 
 import pytest
@@ -67,6 +68,31 @@ async def test_errors_name_the_label_in_the_request(
         await model.label(labels, source="queue", now=1.0)
     assert caught.value.path == path
     assert model.log.head() == 0 and model.offset == 0 and not model.pending
+    await model.log.close()
+
+
+async def test_fields_outside_the_common_shape_take_the_full_checks(tmp_path: Path) -> None:
+    model = await _model(tmp_path)
+    model.max_fields = 2
+    plain = {"title": "oak table", "price": 80}
+    refused = [
+        ({"title": "oak", "price": 80, "category": "home"}, "over the limit of 2"),
+        (["title", "oak"], "must be an object"),
+        ({"price": 2**70}, "integers must fit in 64 bits"),
+    ]
+    for fields, message in refused:
+        labels = [{"label": "fine", "fields": plain}, {"label": "fine", "fields": fields}]
+        with pytest.raises(InvalidEvent, match=message) as caught:
+            await model.label(labels, source="queue", now=1.0)
+        assert caught.value.path == "labels[1].fields"
+    assert model.log.head() == 0 and model.offset == 0
+    # A mapping that is not a dict is taken as the dict it reads as.
+    ack = await model.label(
+        [{"id": "m", "label": "fine", "fields": MappingProxyType(plain)}], source="q", now=1.0
+    )
+    assert ack.applied == 1 and model.applied["m"] == 0
+    async for _, payload in model.log.read(0):
+        assert records.fields(records.decode(payload)) == plain
     await model.log.close()
 
 

@@ -28,7 +28,14 @@ import pytest
 from conftest import IN_CI, _run, _unmount, mounted_tmpfs, require_binary
 from thresher import records
 from thresher.errors import LogUnavailable
-from thresher.labellog import READ_BATCH, CorruptLog, FileLog, LabelLog, OffsetOutOfRange
+from thresher.labellog import (
+    READ_BATCH,
+    SPARSE_EVERY,
+    CorruptLog,
+    FileLog,
+    LabelLog,
+    OffsetOutOfRange,
+)
 
 RECORD = {"id": "e1", "label": "fraud", "fields": {"title": "cheap", "price": 3.5},
           "source": "review", "served": "fine", "time": 1700000000.25}  # fmt: skip
@@ -298,6 +305,26 @@ async def test_rotation_sparse_index_and_trim(tmp_path: Path) -> None:
     again = await FileLog.open(tmp_path / "log", segment_bytes=8192)
     assert (again.first(), again.head()) == (bases[-1], 1000)
     assert await again.append([b"next"]) == 1000
+    await again.close()
+
+
+async def test_sparse_index_of_appends_equals_the_one_a_scan_builds(tmp_path: Path) -> None:
+    # Appends of every size, some holding several indexed records, some none: the positions
+    # noted while appending are those recovery finds by scanning the segment on open.
+    log = await FileLog.open(tmp_path / "log")
+    sizes = [1, 255, 1, 600, 3, 256, 512, 40, 1000, 7]
+    expected = [payload(i, 5 + i % 37) for i in range(sum(sizes))]
+    at = 0
+    for size in sizes:
+        await log.append(expected[at : at + size])
+        at += size
+    noted = list(log._index[0])
+    assert len(noted) == 1 + len(expected) // SPARSE_EVERY
+    await log.close()
+    again = await FileLog.open(tmp_path / "log")
+    assert again._index[0] == noted
+    for start in (0, 255, 256, 257, 1500, len(expected) - 1):
+        assert await read_all(again, start) == list(enumerate(expected))[start:], start
     await again.close()
 
 

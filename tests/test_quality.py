@@ -6,6 +6,7 @@ from __future__ import annotations
 import itertools
 import json
 import math
+import os
 from typing import Any
 
 import msgpack
@@ -13,6 +14,7 @@ import numpy as np
 import pytest
 from sklearn.metrics import confusion_matrix, f1_score, precision_score, recall_score
 
+from thresher import quality_runs
 from thresher.errors import InvalidConfig, InvalidInput
 from thresher.quality import MAX_ALARMS_KEPT, MAX_SOURCES, DriftParams, Quality
 
@@ -354,13 +356,24 @@ def _at_once(q: Quality, run: dict[str, list[Any]], cuts: list[int]) -> list[int
     return fired
 
 
-@pytest.mark.parametrize(("k", "cuts"), [(2, []), (2, [1, 2, 700, 2500]), (3, [999, 1000])])
-def test_record_many_counts_as_record_does_one_by_one(k: int, cuts: list[int]) -> None:
+@pytest.mark.parametrize("native", [True, False])
+@pytest.mark.parametrize(
+    ("k", "cuts"), [(2, []), (2, [1, 2, 700, 2500]), (3, [999, 1000]), (64, [5]), (65, [5])]
+)
+def test_record_many_counts_as_record_does_one_by_one(
+    k: int, cuts: list[int], native: bool
+) -> None:
+    # record_many's compiled loop (_quality.c) and its Python loop, each against `record`.
+    if native and quality_runs._quality is None:
+        if os.environ.get("CI"):
+            pytest.fail("thresher._quality is not built; pip install the package")
+        pytest.skip("thresher._quality is not built")
     run = _run_of(k, 6000, k)
     drift = DriftParams(threshold=8.0, min_samples=20)
     one = Quality([f"c{j}" for j in range(k)], windows=(50, 700), drift=drift, history_every=7,
                   history_max=20)  # fmt: skip
     many = Quality.from_state(one.state())
+    many.native = native
     assert _at_once(many, run, cuts) == _one_by_one(one, run)
     assert len(one.alarm_at) > 3 and len(one.by_source) == MAX_SOURCES + 1
     assert one.history_stride > 7 and one.served_labelled > 0
@@ -380,3 +393,39 @@ def test_record_many_names_a_bad_label_after_counting_those_before_it() -> None:
     assert (first.value.path, second.value.path) == ("predicted", "predicted")
     assert many.labelled == one.labelled == 30
     assert many.counters_digest() == one.counters_digest()
+
+
+class _Declines:
+    """The compiled loop, declining every call after the first ``takes`` (as for state of a
+    type it does not take), so that the Python loop counts the rest."""
+
+    def __init__(self, takes: int, compiled: Any) -> None:
+        self.takes, self.compiled = takes, compiled
+
+    def record_run(self, *args: Any) -> Any:
+        self.takes -= 1
+        return None if self.takes < 0 else self.compiled.record_run(*args)
+
+
+@pytest.mark.parametrize("takes", [0, 1, 3])
+def test_the_python_loop_counts_what_the_compiled_one_declines(
+    takes: int, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    if quality_runs._quality is None:
+        pytest.skip("thresher._quality is not built")
+    run = _run_of(9, 3000, 2)
+    drift = DriftParams(threshold=8.0, min_samples=20)
+    one = Quality(["a", "b"], windows=(50, 700), drift=drift, history_every=7, history_max=20)
+    many = Quality.from_state(one.state())
+    compiled = quality_runs._quality
+    monkeypatch.setattr(quality_runs, "_quality", _Declines(takes, compiled))
+    assert _at_once(many, run, [1500]) == _one_by_one(one, run)
+    assert many.state() == one.state()
+    # State of a type the compiled loop does not take (a tuple for the decayed pair).
+    plain, odd = Quality(["a", "b"]), Quality(["a", "b"])
+    odd.decayed = (0.0, 0.0)  # type: ignore[assignment]
+    assert compiled.record_run(odd, [0], [1], [None], ["s"], 0, "(other)", 10) is None
+    monkeypatch.setattr(quality_runs, "_quality", _Declines(10**9, compiled))
+    for q in (plain, odd):
+        assert _at_once(q, run, []) == _one_by_one(Quality(["a", "b"]), run)
+    assert odd.counters_digest() == plain.counters_digest()

@@ -185,6 +185,12 @@ class IdTable:
 
     def state(self) -> dict[str, Any]:
         """The table for a snapshot, in new arrays: ``cls`` whole, the used slots' hashes."""
+        if self._fast is not None:  # one compiled pass instead of five numpy ones
+            h1 = np.empty(self.count, np.uint64)
+            h2 = np.empty(self.count, np.uint64)
+            kept = np.empty(self.capacity, np.uint8)
+            if _appliedids.gather(self.h1, self.h2, self.cls, h1, h2, kept):
+                return {"count": self.count, "cls": kept, "h1": h1, "h2": h2}
         used = np.flatnonzero(self.cls)
         small = self.count == 0 or int(self.cls.max()) <= np.iinfo(np.uint8).max
         kept = self.cls.astype(np.uint8) if small else self.cls.copy()
@@ -231,7 +237,11 @@ class AppliedIds:
         self.shadowed = 0
 
     def get(self, event_id: str, default: int | None = None) -> int | None:
-        y = self.current.find(event_id)
+        # Called for every labelled id: the compiled find first, without IdTable.find's frame.
+        current = self.current
+        y = None if current._fast is None else current._fast.find(event_id)
+        if y is None:
+            y = current.find(event_id)
         if y < 0 and self.previous is not None:
             y = self.previous.find(event_id)
         return default if y < 0 else y

@@ -90,15 +90,20 @@ class Applying(Mistakes):
     ) -> None:
         """Apply the records at offsets ``first, first + 1, ...``: the same as `apply` on each.
 
-        ``rows`` optionally holds each record's featurized row (None where it has none).
+        ``rows`` optionally holds each record's featurized row (None where it has none), or
+        is one :class:`~thresher.features.Batch` whose row ``k`` is that of ``recs[k]``.
         """
         if len(recs) <= 1:  # one record is cheaper on its own than through the batch machinery
             for record in recs:
-                self.apply(first, record, None if rows is None else rows[0])
+                if isinstance(rows, Batch):
+                    self.apply(first, record, BatchRow(rows, 0))
+                else:
+                    self.apply(first, record, None if rows is None else rows[0])
             return
         if first != self.offset:
             raise RuntimeError(f"{self.name}: applying offset {first}, expected {self.offset}")
-        given = list(rows) if rows is not None else None
+        whole = rows if isinstance(rows, Batch) else None
+        given = None if rows is None or whole is not None else list(rows)
         # A class list never changes, so only a foreign record has a label it lacks.
         label_index = self.class_index.get
         found = [label_index(record["label"]) for record in recs]
@@ -109,14 +114,19 @@ class Applying(Mistakes):
             ys = [found[k] for k in learned]
         else:
             learned, ys = list(range(len(recs))), found
-        learned, ys, (indptr, indices, values) = self._featurize_run(recs, given, learned, ys)
+        if whole is not None and len(learned) == len(recs):  # a label request's own batch
+            indptr, indices, values = whole
+        else:
+            if whole is not None:
+                given = [BatchRow(whole, k) for k in range(len(recs))]
+            learned, ys, (indptr, indices, values) = self._featurize_run(recs, given, learned, ys)
         if learned:
             keep = self._recent.maxlen or 0
-            labels = np.asarray(ys, dtype=np.int64)
-            steps, befores = _learn(self.learner, indptr, indices, values, labels, keep)
-            run = [recs[k] for k in learned]
+            labels = np.array(ys, dtype=np.int64)
+            steps, wrong, befores = _learn(self.learner, indptr, indices, values, labels, keep)
+            run = recs if len(learned) == len(recs) else [recs[k] for k in learned]
             self._count_run(first, run, learned, ys, steps.predicted)
-            for j in np.flatnonzero(steps.mistakes).tolist():
+            for j in wrong:
                 run[j]["_mistake"] = True
             for j, before in befores.items():
                 a, b = int(indptr[j]), int(indptr[j + 1])
@@ -362,11 +372,14 @@ def _learn(
     values: np.ndarray,
     ys: np.ndarray,
     keep: int,
-) -> tuple[Any, dict[int, np.ndarray]]:
-    """Learn a CSR batch in order; the served weights (rows, nnz) behind its last ``keep``
-    mistakes, by row number, as they were when each was predicted."""
+) -> tuple[Any, list[int], dict[int, np.ndarray]]:
+    """Learn a CSR batch in order: its steps, the row numbers of its mistakes, and the served
+    weights (rows, nnz) behind its last ``keep`` mistakes, by row number, as they were when
+    each was predicted."""
     if keep <= 0:
-        return learner.update_batch(indptr, indices, values, ys), {}
+        steps = learner.update_batch(indptr, indices, values, ys)
+        return steps, np.flatnonzero(steps.mistakes).tolist(), {}
     steps, before = learner.update_batch_explained(indptr, indices, values, ys)
-    wanted = np.flatnonzero(steps.mistakes)[-keep:].tolist()
-    return steps, {j: before[:, indptr[j] : indptr[j + 1]].copy() for j in wanted}
+    wrong = np.flatnonzero(steps.mistakes).tolist()
+    ends = indptr.tolist() if wrong else []
+    return steps, wrong, {j: before[:, ends[j] : ends[j + 1]].copy() for j in wrong[-keep:]}

@@ -62,6 +62,7 @@ class Labelling(Applying):
     frozen: str | None
     inflight: int
     holds: int
+    max_fields: int
     _idle: asyncio.Event
     _ready: dict[int, tuple[dict[str, Any], Any]]
     _fields: Callable[[Any, str], Mapping[str, Any]]  # Model's, shared with scoring
@@ -93,60 +94,27 @@ class Labelling(Applying):
     ) -> LabelAck:
         if self.shared is not None:
             await self._recall(self.shared, labels)
-        # Every label that gets featurized: position, record, fields; a record holds its
-        # fields packed, as the log does, so that later changes to the caller's map show nowhere.
+        # Every label that gets featurized, in order: position, record, fields.
         built: list[tuple[int, dict[str, Any], Mapping[str, Any]]] = []
-        kept: list[int] = []  # positions in ``built`` of the records to append
-        fresh: dict[str, int] = {}
-        duplicates = 0
-        pack = records.fields_packer()
         try:
-            for i, item in enumerate(labels):
-                made = self._label_record(item, i, source, now)
-                if made is None:
-                    duplicates += 1
-                    continue
-                record, fields, y = made
-                built.append((i, record, fields))
-                event_id = record["id"]
-                if event_id is not None:
-                    if event_id in fresh:
-                        if fresh[event_id] != y:
-                            raise Conflict(
-                                f"id {event_id!r} appears twice in this request with different "
-                                "labels",
-                                path=f"labels[{i}].label",
-                            )
-                        duplicates += 1
-                        continue
-                    fresh[event_id] = y
-                try:
-                    record["packed"] = pack(fields)
-                except records.CorruptRecord:
-                    raise InvalidEvent(
-                        "the label's fields cannot be stored in the label log: integers must "
-                        "fit in 64 bits; send larger numbers as strings or floats",
-                        path=f"labels[{i}].fields",
-                    ) from None
-                kept.append(len(built) - 1)
+            kept, fresh, duplicates = self._check_labels(labels, source, now, built)
         except Exception:
             # Labels are checked in order, each featurized as it passes: an invalid field in
             # an earlier label is the error to report.
             self._featurize(built)
             raise
         batch = self._featurize(built)
-        rows = [(built[p][1], BatchRow(batch, p)) for p in kept]
-        spots = [built[p][0] for p in kept]
-        payloads = (
-            records.encode_many([r for r, _ in rows], self.row_key, batch, kept) if kept else []
-        )
         self.duplicates += duplicates
-        if not payloads:
+        if not kept:
             return LabelAck(0, duplicates, 0, self.log.head())
+        whole = len(kept) == len(built)  # no repeats: the batch's rows are the records'
+        recs = [record for _, record, _ in built] if whole else [built[p][1] for p in kept]
+        payloads = records.encode_many(recs, self.row_key, batch, kept)
         self.pending.update(fresh)
         try:
             if self.shared is not None:
-                ack = await self._admit(self.shared, payloads, rows, spots, duplicates, wait)
+                spots = [built[p][0] for p in kept]
+                ack = await self._admit(self.shared, payloads, recs, spots, duplicates, wait)
             else:
                 first = await self.log.append(payloads)
         except BaseException:
@@ -161,10 +129,11 @@ class Labelling(Applying):
         if self.apply_on_append:
             if first == self.offset and not self._ready and not self.holds:
                 # The usual case: the next records in the log, nothing else waiting to apply.
-                self.apply_batch(first, [record for record, _ in rows], [r for _, r in rows])
+                rows = batch if whole else [BatchRow(batch, p) for p in kept]
+                self.apply_batch(first, recs, rows)
             else:
-                for k, (record, row) in enumerate(rows):
-                    self._ready[first + k] = (record, row)
+                for k, (record, p) in enumerate(zip(recs, kept, strict=True)):
+                    self._ready[first + k] = (record, BatchRow(batch, p))
                 self._drain()
         if wait or self.apply_on_append:
             await self.wait_applied(last)
@@ -172,7 +141,7 @@ class Labelling(Applying):
             self.pending.pop(event_id, None)
         mistakes: int | None = None
         if self.apply_on_append or wait:
-            mistakes = sum(1 for record, _ in rows if record.get("_mistake"))
+            mistakes = len([record for record in recs if "_mistake" in record])
         return LabelAck(len(payloads), duplicates, mistakes, last + 1)
 
     def _featurize(self, built: list[tuple[int, dict[str, Any], Mapping[str, Any]]]) -> Batch:
@@ -208,13 +177,13 @@ class Labelling(Applying):
         self,
         shared: SharedLog,
         payloads: list[bytes],
-        rows: list[Any],
+        recs: list[dict[str, Any]],
         spots: list[int],
         duplicates: int,
         wait: bool,
     ) -> LabelAck:
         """Shared log: it decides duplicates and conflicts across replicas; a follower applies."""
-        keys = [(record["id"], record["label"], record["source"]) for record, _ in rows]
+        keys = [(record["id"], record["label"], record["source"]) for record in recs]
         first, repeated, conflict = await shared.admit(payloads, keys)
         if conflict is not None:
             k, existing = conflict
@@ -236,60 +205,100 @@ class Labelling(Applying):
             mistakes = None if None in outcomes else sum(map(bool, outcomes))
         return LabelAck(count, duplicates, mistakes, last + 1)
 
-    def _label_record(
-        self, item: Any, i: int, source: str, now: float
-    ) -> tuple[dict[str, Any], Mapping[str, Any], int] | None:
-        """The checked record of label ``i`` (its fields not yet packed), its fields and class
-        index, not yet featurized; None for a known duplicate."""
-        if type(item) is not dict and not isinstance(item, Mapping):
-            raise InvalidEvent("each label must be an object with 'label'", path=f"labels[{i}]")
-        if not item.keys() <= LABEL_KEYS:
-            extra = sorted(set(item) - LABEL_KEYS, key=str)
-            raise InvalidEvent(
-                f"unknown key {extra[0]!r}; a label has 'id', 'label' and 'fields'",
-                path=f"labels[{i}]",
-            )
-        label = item.get("label")
-        y = self.class_index.get(label) if isinstance(label, str) else None
-        if y is None:
-            raise InvalidEvent(
-                f"label must be one of {', '.join(map(repr, self.config.classes))}",
-                path=f"labels[{i}].label",
-            )
-        event_id = item.get("id")
-        if event_id is not None and (type(event_id) is not str or not 0 < len(event_id) <= 256):
-            check_id(event_id, f"labels[{i}].id")  # raises for what is not a plain id
-        served = None
-        fields = item.get("fields")
-        if event_id is not None:
-            known = self.applied.get(event_id)
-            if known is None:
-                known = self.pending.get(event_id)
-            if known is not None:
-                if known == y:
-                    return None
-                raise Conflict(
-                    f"id {event_id!r} was already labelled {self.config.classes[known]!r}; "
-                    "labels are applied once. To correct a model, restore a snapshot or rebuild "
-                    "excluding the source",
+    def _check_labels(
+        self,
+        labels: Sequence[Any],
+        source: str,
+        now: float,
+        built: list[tuple[int, dict[str, Any], Mapping[str, Any]]],
+    ) -> tuple[list[int], dict[str, int], int]:
+        """Check the labels in order, appending each one that gets featurized to ``built``
+        (position, record, fields): the positions in ``built`` of the records to append (their
+        fields packed), the class of each id among them, and how many labels were duplicates.
+
+        One loop over local names, without a call per label: it runs for every label.
+        """
+        kept: list[int] = []
+        fresh: dict[str, int] = {}
+        duplicates = 0
+        pack = records.raw_fields_packer()
+        class_index, classes, max_fields = self.class_index, self.config.classes, self.max_fields
+        applied, pending, cached_event = self.applied.get, self.pending.get, self.cache.get
+        for i, item in enumerate(labels):
+            if type(item) is not dict and not isinstance(item, Mapping):
+                raise InvalidEvent("each label must be an object with 'label'", path=f"labels[{i}]")
+            if not item.keys() <= LABEL_KEYS:
+                extra = sorted(set(item) - LABEL_KEYS, key=str)
+                raise InvalidEvent(
+                    f"unknown key {extra[0]!r}; a label has 'id', 'label' and 'fields'",
+                    path=f"labels[{i}]",
+                )
+            label = item.get("label")
+            y = class_index.get(label) if isinstance(label, str) else None
+            if y is None:
+                raise InvalidEvent(
+                    f"label must be one of {', '.join(map(repr, classes))}",
                     path=f"labels[{i}].label",
                 )
-            cached = self.cache.get(event_id, now)
-            if cached is not None:
-                served = self.config.classes[cached.served]
-                if fields is None:
-                    fields = cached.fields
-        if fields is None:
-            raise InvalidEvent(
-                f"id {event_id!r} is not among recently scored events (it expired or was never "
-                "scored here); send the event's 'fields' with the label"
-                if event_id is not None
-                else "a label without an id must carry the event's 'fields'",
-                path=f"labels[{i}].fields",
-            )
-        fields = self._fields(fields, f"labels[{i}].fields")
-        record = {"id": event_id, "label": label, "source": source, "served": served, "time": now}
-        return record, fields if type(fields) is dict else dict(fields), y
+            event_id = item.get("id")
+            if event_id is not None and (type(event_id) is not str or not 0 < len(event_id) <= 256):
+                check_id(event_id, f"labels[{i}].id")  # raises for what is not a plain id
+            served = None
+            fields = item.get("fields")
+            if event_id is not None:
+                known = applied(event_id)
+                if known is None:
+                    known = pending(event_id)
+                if known is not None:
+                    if known == y:
+                        duplicates += 1
+                        continue
+                    raise Conflict(
+                        f"id {event_id!r} was already labelled {classes[known]!r}; labels are "
+                        "applied once. To correct a model, restore a snapshot or rebuild "
+                        "excluding the source",
+                        path=f"labels[{i}].label",
+                    )
+                cached = cached_event(event_id, now)
+                if cached is not None:
+                    served = classes[cached.served]
+                    if fields is None:
+                        fields = cached.fields
+            if fields is None:
+                raise InvalidEvent(
+                    f"id {event_id!r} is not among recently scored events (it expired or was "
+                    "never scored here); send the event's 'fields' with the label"
+                    if event_id is not None
+                    else "a label without an id must carry the event's 'fields'",
+                    path=f"labels[{i}].fields",
+                )
+            if type(fields) is not dict or len(fields) > max_fields:  # else `_fields` passes it
+                fields = self._fields(fields, f"labels[{i}].fields")
+                fields = fields if type(fields) is dict else dict(fields)
+            record = {"id": event_id, "label": label, "source": source, "served": served,
+                      "time": now}  # fmt: skip
+            built.append((i, record, fields))
+            if event_id is not None:
+                if event_id in fresh:
+                    if fresh[event_id] != y:
+                        raise Conflict(
+                            f"id {event_id!r} appears twice in this request with different labels",
+                            path=f"labels[{i}].label",
+                        )
+                    duplicates += 1
+                    continue
+                fresh[event_id] = y
+            # Packed now, as the log stores them: later changes to the caller's map show nowhere.
+            try:
+                record["packed"] = pack(fields)
+            except records.UNPACKABLE:
+                raise InvalidEvent(
+                    "the label's fields cannot be stored in the label log: integers must "
+                    "fit in 64 bits; send larger numbers as strings or floats",
+                    path=f"labels[{i}].fields",
+                ) from None
+            kept.append(len(built) - 1)
+        return kept, fresh, duplicates
 
     def _drain(self) -> None:
         """Apply every ready record from the applied offset on, as one batch."""

@@ -21,6 +21,7 @@ import logging
 import os
 from collections import deque
 from collections.abc import AsyncIterator
+from itertools import islice
 from pathlib import Path
 from typing import Any
 
@@ -232,14 +233,18 @@ class FileLog(LabelLog):
         self._needs_repair = False
 
     def _note_positions(self, first: int, payloads: list[bytes]) -> None:
+        """Extend the sparse index with the file positions of the records appended that the
+        index wants (each SPARSE_EVERY-th of the segment); most appends hold none of them."""
         base = self._bases[-1]
         index = self._index.setdefault(base, [HEADER.size])
-        pos = self._pos
-        for k, payload in enumerate(payloads):
-            number = first - base + k
-            if number == len(index) * SPARSE_EVERY:
-                index.append(pos)
-            pos += FRAME.size + len(payload)
+        mark = len(index) * SPARSE_EVERY - (first - base)  # the position in ``payloads``
+        if mark < 0:
+            return
+        pos, at = self._pos, 0
+        while mark < len(payloads):
+            pos += FRAME.size * (mark - at) + sum(map(len, islice(payloads, at, mark)))
+            index.append(pos)
+            at, mark = mark, mark + SPARSE_EVERY
 
     def _unavailable(self, exc: OSError) -> LogUnavailable:
         name = errno.errorcode.get(exc.errno or 0, "error")

@@ -22,11 +22,12 @@ from typing import Any
 from .drift import DriftParams as DriftParams
 from .errors import InvalidConfig, InvalidInput
 from .quality_report import QualityReport
+from .quality_runs import MAX_ALARMS_KEPT as MAX_ALARMS_KEPT
+from .quality_runs import MAX_SOURCES as MAX_SOURCES
+from .quality_runs import OTHER_SOURCE as OTHER_SOURCE
+from .quality_runs import RunCounting
 
 STATE_FORMAT = 1
-MAX_ALARMS_KEPT = 100
-MAX_SOURCES = 1000
-OTHER_SOURCE = "(other)"  # where labels of sources past MAX_SOURCES are counted
 
 
 def _all_indices(values: Sequence[Any], n: int) -> bool:
@@ -42,7 +43,7 @@ def _index(value: Any, n: int, path: str) -> int:
     return int(value)
 
 
-class Quality(QualityReport):
+class Quality(RunCounting, QualityReport):
     """Counters of one model's progressive and served predictions.
 
     Parameters
@@ -116,6 +117,7 @@ class Quality(QualityReport):
         self.alarm_at: list[int] = []
         self.history: list[dict[str, Any]] = []
         self.history_stride = history_every
+        self.native = True  # False: `record_many` counts in its Python loop (the reference)
 
     # -- recording -------------------------------------------------------------------------
 
@@ -175,8 +177,9 @@ class Quality(QualityReport):
         """Count labels in order as :meth:`record` would each, stopping after the first one that
         raises a drift alarm: its position, or None when every label was counted quietly.
 
-        One loop over local variables, written back wherever a reader looks (a history
-        sample, an alarm, the end), so the counters end bit-identical to :meth:`record`'s.
+        Labels that are all plain class indices are counted in one loop (see
+        :mod:`thresher.quality_runs`), so the counters end bit-identical to :meth:`record`'s;
+        any other label goes through :meth:`record`, which names the fault.
         """
         n = len(truths)
         k = self.k
@@ -192,69 +195,7 @@ class Quality(QualityReport):
                 if self.record(truths[i], predicted[i], **kw):
                     return i
             return None
-        binary, confusion, served_confusion = self.binary, self.confusion, self.served_confusion
-        ring, by_source = self.ring, self.by_source
-        size = len(ring)
-        windows = list(zip(self.windows, self.window_counts, strict=True))
-        decay, (dm, dn) = self._decay, self.decayed
-        labelled, mistakes = self.labelled, self.mistakes
-        served_labelled, served_mistakes = self.served_labelled, self.served_mistakes
-        p = self.drift
-        alpha, delta, min_samples, threshold = p.alpha, p.delta, p.min_samples, p.threshold
-        ph = self.ph
-        ph_n, mean, m, m_min, statistic = ph["n"], ph["mean"], ph["m"], ph["m_min"], ph["statistic"]
-        stride = self.history_stride
-        fired = None
-        for i in range(n):
-            truth, guess = truths[i], predicted[i]
-            mistake = truth != guess
-            t = labelled
-            labelled += 1
-            mistakes += mistake
-            confusion[truth][guess] += 1
-            code = 2 * truth + guess if binary else int(mistake)
-            for width, counts in windows:
-                if t >= width:
-                    counts[ring[(t - width) % size]] -= 1
-                counts[code] += 1
-            ring[t % size] = code
-            dm, dn = decay * dm + mistake, decay * dn + 1.0
-            shown = served[i]
-            if shown is not None:
-                served_labelled += 1
-                served_mistakes += truth != shown
-                served_confusion[truth][shown] += 1
-            counts = by_source.get(sources[i])
-            if counts is None:
-                source = sources[i] if len(by_source) < MAX_SOURCES else OTHER_SOURCE
-                counts = by_source.setdefault(source, [0, 0])
-            counts[0] += 1
-            counts[1] += mistake
-            # Page–Hinkley, as `_page_hinkley` computes it.
-            x = 1.0 if mistake else 0.0
-            ph_n += 1
-            mean += (x - mean) / ph_n
-            m = alpha * m + (x - mean - delta)
-            if m < m_min:
-                m_min = m
-            statistic = m - m_min
-            alarm = not (ph_n < min_samples or statistic <= threshold)
-            if alarm or labelled % stride == 0:
-                self.labelled, self.mistakes, self.decayed = labelled, mistakes, [dm, dn]
-                if alarm:
-                    self.alarms += 1
-                    self.alarm_at = [*self.alarm_at, labelled][-MAX_ALARMS_KEPT:]
-                    ph_n, mean, m, m_min, statistic = 0, 0.0, 0.0, 0.0, 0.0
-                    fired = i
-                if labelled % stride == 0:
-                    self._sample(times[i])
-                    stride = self.history_stride
-                if alarm:
-                    break
-        self.labelled, self.mistakes, self.decayed = labelled, mistakes, [dm, dn]
-        self.served_labelled, self.served_mistakes = served_labelled, served_mistakes
-        self.ph = {"n": ph_n, "mean": mean, "m": m, "m_min": m_min, "statistic": statistic}
-        return fired
+        return self._count_checked(truths, predicted, sources, served, times)
 
     def _page_hinkley(self, x: float) -> bool:
         ph, p = self.ph, self.drift

@@ -41,6 +41,11 @@ import numpy as np
 
 from .features import TOKEN_RULES
 
+try:  # the compiled fast path of `encode_many` (_records.c); the Python below is its reference
+    from . import _records
+except ImportError:  # pragma: no cover - a build without the C extension
+    _records = None  # type: ignore[assignment]
+
 VERSION = 2
 REQUIRED = ("id", "label", "fields", "source", "served", "time")
 KEY_BYTES = 8
@@ -58,17 +63,28 @@ def fingerprint(spec: Mapping[str, Any], *, bits: int, seed: int, signed: bool) 
     return hashlib.sha256(text.encode()).digest()[:KEY_BYTES]
 
 
+UNPACKABLE = (TypeError, ValueError, OverflowError)  # what packing fields can raise
+
+
+def raw_fields_packer() -> Callable[[Mapping[str, Any]], bytes]:
+    """:func:`fields_packer` without its error translation: it raises one of `UNPACKABLE`.
+
+    For a caller that packs in its own loop and reports the failure itself.
+    """
+    return msgpack.Packer(use_bin_type=True, strict_types=True).pack  # type: ignore[no-any-return]
+
+
 def fields_packer() -> Callable[[Mapping[str, Any]], bytes]:
     """A function packing fields maps as records store them; raises :class:`CorruptRecord`.
 
     Make one per run of records: it reuses one packer (creating one costs as much as a pack).
     """
-    pack = msgpack.Packer(use_bin_type=True, strict_types=True).pack
+    pack = raw_fields_packer()
 
     def packed(fields: Mapping[str, Any]) -> bytes:
         try:
             data: bytes = pack(fields)
-        except (TypeError, ValueError, OverflowError) as exc:
+        except UNPACKABLE as exc:
             raise CorruptRecord(f"label record fields cannot be encoded: {exc}") from exc
         return data
 
@@ -95,6 +111,24 @@ def encode_many(
     """Payloads of records whose fields :func:`fields_packer` packed already (as ``packed``),
     ``recs[k]`` with row ``picks[k]`` of the CSR ``batch`` (indptr, indices, values) that the
     featurizer with fingerprint ``key`` made."""
+    if _records is not None:
+        made = _records.encode(
+            recs if type(recs) is list else list(recs), key, *batch,
+            picks if type(picks) is list else list(picks),
+        )  # fmt: skip
+        if made is not None:
+            return made  # type: ignore[no-any-return]
+    return encode_many_reference(recs, key, batch, picks)
+
+
+def encode_many_reference(
+    recs: Sequence[dict[str, Any]],
+    key: bytes,
+    batch: tuple[np.ndarray, np.ndarray, np.ndarray],
+    picks: Sequence[int],
+) -> list[bytes]:
+    """:func:`encode_many` in Python and numpy, the reference of its compiled path: that path
+    hands over every call it does not take, and this encodes it or raises the exact error."""
     indptr, indices, values = batch
     if indices.size and not 0 <= int(indices.min()) <= int(indices.max()) < 1 << 32:
         raise ValueError("row indices must be below 2**32 to be stored")
