@@ -134,3 +134,26 @@ async def test_capture_refuses_a_state_swapped_while_it_ran(
         await taking
     assert model.holds == 0 and registry.stores[model.name].list() == []
     await registry.close(snapshot=False)
+
+
+async def test_snapshots_by_label_count_are_spaced_by_the_applied_ids_they_write(
+    tmp_path: Path,
+) -> None:
+    options = {"flush": "interval", "snapshot_interval": 0, "snapshot_every": 20}
+    settings = Settings.from_mapping({"data_dir": str(tmp_path), **options})
+    registry = ModelRegistry(settings)
+    await registry.open()
+    model = await registry.create({**DEMO_MODEL, "bits": 16})
+    traffic = ListingTraffic(seed=5).batch(400)
+    await model.label(_labels(traffic), source="t", now=1.0)
+    assert len(model.applied) == 400
+    # 20 labels since the last snapshot would write 400 ids: 20 per label, over the 8 allowed.
+    assert not registry.note_applied(model.name, 20)
+    assert not registry.note_applied(model.name, 29)  # 49 labels: 8.2 ids a label
+    assert registry.note_applied(model.name, 1)  # 50 labels: 8 ids a label
+    await registry.snapshot(model.name, automatic=True)
+    unkeyed = [{"label": label, "fields": fields} for _, fields, label in traffic[:30]]
+    await model.label(unkeyed, source="t", now=2.0)  # labels without ids add none
+    assert not registry.note_applied(model.name, 19)
+    assert registry.note_applied(model.name, 31)  # 50 labels since the snapshot
+    await registry.close()

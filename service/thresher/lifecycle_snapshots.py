@@ -27,6 +27,10 @@ if TYPE_CHECKING:
 logger = logging.getLogger("thresher.models")
 
 
+# Applied ids an automatic snapshot by label count may write per label since the last one.
+IDS_PER_LABEL = 8
+
+
 class Snapshotting:
     """Snapshot, restore and rebuild for `ModelRegistry`, which owns the state used here."""
 
@@ -42,10 +46,19 @@ class Snapshotting:
     _lock: Callable[[str], asyncio.Lock]
 
     def note_applied(self, name: str, count: int) -> bool:
-        """Count applied labels; True when an automatic snapshot is due by label count."""
-        self._since_snapshot[name] = self._since_snapshot.get(name, 0) + count
+        """Count applied labels; True when an automatic snapshot is due by label count.
+
+        Due after ``snapshot_every`` labels, and not before the labels since the last snapshot
+        are ``1 / IDS_PER_LABEL`` of the applied ids it will write: a snapshot holds every
+        applied id (18 bytes each), so without that spacing its cost per label would grow
+        with the index.
+        """
+        since = self._since_snapshot[name] = self._since_snapshot.get(name, 0) + count
         every = self.settings.snapshot_every
-        return bool(every) and self._since_snapshot[name] >= every
+        if not every or since < every:
+            return False
+        model = self.models.get(name)
+        return model is None or since * IDS_PER_LABEL >= len(model.applied)
 
     async def snapshot(self, name: str, *, automatic: bool = False) -> SnapshotInfo:
         """Write a snapshot now; the state is captured and written by worker threads."""

@@ -46,7 +46,9 @@ class Settings:
     flush_interval_ms: int = _opt(50, "fsync period for --flush interval, in milliseconds")
     segment_bytes: int = _opt(64 * MiB, "label log segment size before rotation, in bytes")
     snapshot_interval: float = _opt(300.0, "seconds between automatic snapshots (0 = off)")
-    snapshot_every: int = _opt(100_000, "labels between automatic snapshots (0 = off)")
+    snapshot_every: int = _opt(
+        100_000, "labels between automatic snapshots, at least 1/8 of the applied ids (0 = off)"
+    )
     snapshot_keep: int = _opt(5, "snapshot generations kept per model")
     log_retain: int = _opt(
         0, "labels kept in the log below the oldest retained snapshot (for rebuilds)"
