@@ -10,11 +10,13 @@ offset (`redisswitch`). Its state is set up by ``ModelRegistry.__init__``.
 from __future__ import annotations
 
 import asyncio
+import functools
 import logging
 import time
 from collections.abc import Awaitable, Callable, Iterable
 from typing import TYPE_CHECKING, Any, cast
 
+from .background import in_background
 from .errors import Conflict, InvalidConfig, NotFound, Unavailable
 from .models import Model
 from .settings import Settings
@@ -76,8 +78,10 @@ class Snapshotting:
                 return newest
         self._since_snapshot[name] = 0
         state = await model.capture()
-        info = await asyncio.to_thread(
-            self.stores[name].write, state, offset=state["offset"], time=self.clock()
+        info = await in_background(
+            "snapshot-write",
+            functools.partial(self.stores[name].write, offset=state["offset"], time=self.clock()),
+            state,
         )
         self.last_snapshot[name] = info
         await self._trim_log(model, self.stores[name])

@@ -22,6 +22,7 @@ import numpy as np
 
 from .appliedids import AppliedIds
 from .applying import RECENT_MISTAKES
+from .background import in_background
 from .errors import InvalidConfig, Unavailable
 from .eventcache import EventCache
 from .features import FeatureSpec, Featurizer
@@ -138,8 +139,8 @@ class Model(Scoring, Labelling):
             state, learner = self._state(), self.learner
             live = state["learner"]
             arrays = {k: v for k, v in live.items() if isinstance(v, np.ndarray)}
-            captured, state["applied"] = await asyncio.to_thread(
-                _capture_all, arrays, state["applied"]
+            captured, state["applied"] = await in_background(
+                "capture", _capture_all, arrays, state["applied"]
             )
             live.update(captured)
             if self.learner is not learner or self.offset != state["offset"]:
