@@ -96,9 +96,8 @@ class Applying(Mistakes):
         if len(recs) <= 1:  # one record is cheaper on its own than through the batch machinery
             for record in recs:
                 if isinstance(rows, Batch):
-                    self.apply(first, record, BatchRow(rows, 0))
-                else:
-                    self.apply(first, record, None if rows is None else rows[0])
+                    rows = [BatchRow(rows, 0)]
+                self.apply(first, record, None if rows is None else rows[0])
             return
         if first != self.offset:
             raise RuntimeError(f"{self.name}: applying offset {first}, expected {self.offset}")
